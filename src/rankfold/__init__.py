@@ -1,0 +1,39 @@
+"""rankfold: principal components of tables too big for memory.
+
+Public API
+----------
+decompose(source, rank, ...) -> Result
+    Stream a Parquet, Zarr or .npy table into its leading principal components.
+open_result(path) -> Result
+    Open a result group written by :func:`decompose`.
+open_source(path, ...) -> Source
+    Open a table without reading its data (shape, names, blocks).
+"""
+
+from rankfold.api import decompose
+from rankfold.errors import (
+    DataError,
+    MemoryLimitError,
+    OutputError,
+    RankfoldError,
+    SourceError,
+    UsageError,
+)
+from rankfold.result import Result, open_result
+from rankfold.sources import open_source
+
+__version__ = "0.1.0"
+
+__all__ = [
+    "decompose",
+    "open_result",
+    "open_source",
+    "Result",
+    "RankfoldError",
+    "UsageError",
+    "SourceError",
+    "DataError",
+    "MemoryLimitError",
+    "OutputError",
+    "__version__",
+]

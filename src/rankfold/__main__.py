@@ -1,0 +1,3 @@
+from rankfold.cli import run
+
+run()

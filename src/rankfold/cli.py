@@ -1,0 +1,148 @@
+"""The ``rankfold`` command line: argument parsing and error reporting only.
+
+``main(argv) -> int`` parses, calls the library, prints, and turns every
+:class:`~rankfold.errors.RankfoldError` into a one-line message and its exit
+code in one place (:func:`main`).  No computation lives here.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+import time
+
+from rankfold.errors import RankfoldError
+
+EXIT_INTERNAL = 70
+EXIT_INTERRUPTED = 130
+
+
+def _parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="rankfold",
+        description="Principal components of tables too big for memory (Parquet, Zarr, .npy).")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    d = sub.add_parser("decompose", help="compute the leading principal components of a table")
+    d.add_argument("source", metavar="SOURCE", help="Parquet file or folder, Zarr array or group, or .npy file")
+    d.add_argument("--rank", "-k", type=int, required=True, help="number of components to keep")
+    d.add_argument("--out", "-o", required=True, metavar="RESULT.zarr", help="result store to write")
+    d.add_argument("--memory-limit", metavar="SIZE", help="ceiling for data and state, e.g. 512MB, 4GB "
+                   "(default: 60%% of available memory)")
+    d.add_argument("--standardize", action="store_true", help="correlation PCA (unit-variance features)")
+    d.add_argument("--columns", nargs="+", metavar="NAME", help="Parquet columns to use (names or patterns like 'temp_*')")
+    d.add_argument("--exclude", nargs="+", metavar="NAME", help="Parquet columns to leave out (names or patterns)")
+    d.add_argument("--id-column", metavar="NAME", help="Parquet column kept as sample ids")
+    d.add_argument("--samples-as", choices=("rows", "columns"), default="rows",
+                   help="how samples are stored in a Zarr or .npy array (default: rows)")
+    d.add_argument("--missing", choices=("refuse", "fill-mean"), default="refuse",
+                   help="missing values: refuse (default) or fill with the column mean")
+    d.add_argument("--missing-code", type=float, metavar="VALUE",
+                   help="a stored value meaning missing, e.g. -1 in integer genotype stores")
+    d.add_argument("--route", choices=("auto", "memory", "features", "samples"), default="auto",
+                   help="force a route (default: chosen from the shape and the memory limit)")
+    d.add_argument("--array", metavar="NAME", help="array inside a Zarr group")
+    d.add_argument("--seed", type=int, default=0, help="seed for randomized steps (recorded)")
+    d.add_argument("--overwrite", action="store_true", help="replace an existing result store")
+    d.add_argument("--quiet", "-q", action="store_true", help="print nothing but errors")
+
+    s = sub.add_parser("show", help="print a result's components, route and timings")
+    s.add_argument("result", metavar="RESULT.zarr")
+    s.add_argument("--top", type=int, default=None, help="show only the first N components")
+
+    m = sub.add_parser("demo", help="generate two invented data sets and decompose them")
+    m.add_argument("--out", default="rankfold-demo", metavar="DIR", help="folder for data and results (default: ./rankfold-demo)")
+    m.add_argument("--scale", type=float, default=1.0,
+                   help="multiply the data size (e.g. 50 for tables larger than a laptop's memory)")
+    m.add_argument("--memory-limit", metavar="SIZE", help="ceiling for data and state")
+    return parser
+
+
+class _StderrProgress:
+    """One line per finished pass on stderr (live display comes with the long-runs work)."""
+
+    def __init__(self):
+        self.last = None
+
+    def __call__(self, event: dict) -> None:
+        if event["block"] == event["blocks"]:
+            mb = event["bytes"] / 1e6
+            rate = mb / max(event["seconds"], 1e-9)
+            print(f"  {event['pass']}: {event['blocks']:,} blocks, {mb:,.1f} MB in "
+                  f"{event['seconds']:.1f} s ({rate:,.0f} MB/s)", file=sys.stderr)
+
+
+def _decompose(args) -> int:
+    from rankfold.api import decompose
+    from rankfold.report import describe_result
+
+    progress = None if args.quiet else _StderrProgress()
+    if not args.quiet:
+        print(f"rankfold: decomposing {args.source} into {args.rank} component(s)", file=sys.stderr)
+    result = decompose(
+        args.source, args.rank, memory_limit=args.memory_limit, standardize=args.standardize,
+        columns=args.columns, exclude=args.exclude, id_column=args.id_column, samples_as=args.samples_as,
+        missing=args.missing, missing_code=args.missing_code, route=args.route, array=args.array,
+        seed=args.seed, out=args.out, overwrite=args.overwrite, progress=progress)
+    if not args.quiet:
+        print("\n".join(describe_result(result)))
+    return 0
+
+
+def _show(args) -> int:
+    from rankfold.report import describe_result
+    from rankfold.result import open_result
+
+    print("\n".join(describe_result(open_result(args.result), args.top)))
+    return 0
+
+
+def _demo(args) -> int:
+    from rankfold.demo import run_demo
+    from rankfold.memory import parse_memory
+
+    t0 = time.perf_counter()
+    for line in run_demo(os.path.abspath(args.out), scale=args.scale,
+                         memory_limit=parse_memory(args.memory_limit)):
+        print(line, flush=True)
+    print(f"\ndemo finished in {time.perf_counter() - t0:.1f} s")
+    return 0
+
+
+COMMANDS = {"decompose": _decompose, "show": _show, "demo": _demo}
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Run the command line with ``argv``; return the exit code."""
+    parser = _parser()
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:  # argparse has printed its usage message
+        return int(exc.code or 0)
+    try:
+        return COMMANDS[args.command](args)
+    except RankfoldError as exc:
+        print(f"rankfold: error: {exc}", file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt:
+        print("rankfold: interrupted; no result was written", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    except MemoryError:
+        print("rankfold: error: out of memory; lower --memory-limit so that blocks fit, "
+              "or close other programs", file=sys.stderr)
+        return 4
+    except OSError as exc:
+        print(f"rankfold: error: {exc.filename or ''}: {exc.strerror or exc}", file=sys.stderr)
+        return 3
+    except Exception as exc:  # a bug of ours: say so plainly, without a traceback
+        if os.environ.get("RANKFOLD_DEBUG"):
+            raise
+        print(f"rankfold: internal error ({type(exc).__name__}: {exc}); please report it with the "
+              "command you ran (set RANKFOLD_DEBUG=1 for details)", file=sys.stderr)
+        return EXIT_INTERNAL
+
+
+def run() -> None:
+    """Console-script entry point."""
+    sys.exit(main())

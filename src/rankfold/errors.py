@@ -1,0 +1,51 @@
+"""Typed exceptions raised by rankfold.
+
+Every error a user can cause derives from :class:`RankfoldError`.  The command
+line turns each class into a message and an exit code in one place
+(:mod:`rankfold.cli`); library code never prints and never exits.
+
+Exit codes
+----------
+2  usage: an argument or option is malformed or out of range
+3  input: the data source is missing, unreadable or holds values we refuse
+4  resources: the memory ceiling (or disk) is too small for the job
+5  output: the result path exists or cannot be written
+"""
+
+from __future__ import annotations
+
+
+class RankfoldError(Exception):
+    """Base class of every error a user can cause."""
+
+    exit_code = 1
+
+
+class UsageError(RankfoldError, ValueError):
+    """An argument is malformed or out of its allowed range."""
+
+    exit_code = 2
+
+
+class SourceError(RankfoldError):
+    """The data source cannot be opened or read as a numeric table."""
+
+    exit_code = 3
+
+
+class DataError(SourceError):
+    """The data holds values the chosen policy refuses (missing, infinite, constant)."""
+
+    exit_code = 3
+
+
+class MemoryLimitError(RankfoldError):
+    """The memory ceiling is too small for the state plus one block."""
+
+    exit_code = 4
+
+
+class OutputError(RankfoldError):
+    """The result path exists, cannot be written, or is not a rankfold result."""
+
+    exit_code = 5

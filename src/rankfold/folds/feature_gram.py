@@ -1,0 +1,112 @@
+"""Column means and the features x features co-moment matrix, merged exactly.
+
+Each block is centered on its own mean before its Gram product is formed, and
+two partial results are combined with the pairwise update of Chan, Golub and
+LeVeque (1979; "Algorithms for computing the sample variance: analysis and
+recommendations", The American Statistician 37, 1983):
+
+    n    = n_a + n_b
+    d    = mean_b - mean_a
+    mean = mean_a + d * n_b / n
+    M    = M_a + M_b + (n_a * n_b / n) * outer(d, d)
+
+where ``M`` is the sum of outer products of deviations from the mean.  Forming
+``sum(x x^T) - n mean mean^T`` instead would cancel catastrophically when the
+means are large next to the spread (a column mean of 1e6 with unit spread
+loses about twelve digits that way).  Everything is accumulated in float64.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from rankfold.folds.base import FoldState
+
+
+class FeatureGram(FoldState):
+    """Running count, column means and co-moment matrix of sample blocks.
+
+    Parameters
+    ----------
+    n_features : int
+        Number of columns ``m``; the state holds ``m + m*m`` float64 values.
+
+    Notes
+    -----
+    ``update`` costs one GEMM of ``2 * rows * m**2`` flops per block.  A plain
+    ``B.T @ B`` was measured about twice as fast as the symmetric rank-k BLAS
+    update on the development machine, so the full product is formed.
+    """
+
+    _fields = ("count", "mean", "comoment")
+
+    def __init__(self, n_features: int):
+        self.count = 0
+        self.mean = np.zeros(n_features)
+        self.comoment = np.zeros((n_features, n_features))
+
+    def update(self, block: np.ndarray, start: int = 0) -> "FeatureGram":
+        """Fold a ``(rows, m)`` float64 block of whole samples into the state (in place)."""
+        rows = block.shape[0]
+        if rows == 0:
+            return self
+        mean_b = block.mean(axis=0)
+        block -= mean_b  # the block is ours (a fresh read), centering in place saves a copy
+        self._combine(rows, mean_b, block.T @ block)
+        return self
+
+    def merge(self, other: "FeatureGram") -> "FeatureGram":
+        """Combine with a state over a disjoint set of samples (in place)."""
+        if other.count:
+            self._combine(other.count, other.mean, other.comoment)
+        return self
+
+    def _combine(self, n_b: int, mean_b: np.ndarray, comoment_b: np.ndarray) -> None:
+        n_a = self.count
+        if n_a == 0:
+            self.count, self.mean, self.comoment = n_b, mean_b.copy(), comoment_b.copy()
+            return
+        n = n_a + n_b
+        delta = mean_b - self.mean
+        self.mean = self.mean + delta * (n_b / n)
+        self.comoment += comoment_b
+        # Chan, Golub & LeVeque pairwise correction term.
+        self.comoment += np.outer(delta, delta * (n_a * n_b / n))
+        self.count = n
+
+    def covariance(self) -> np.ndarray:
+        """Sample covariance with ``ddof=1``: ``M / (n - 1)``."""
+        return self.comoment / (self.count - 1)
+
+
+class ColumnMeans(FoldState):
+    """Per-column count of present values and their mean, ignoring NaN.
+
+    The first pass of ``missing="fill-mean"``: the fill values must be known
+    before the second pass can fold filled blocks.  Means are merged with the
+    same pairwise weighting as :class:`FeatureGram`.
+    """
+
+    _fields = ("count", "mean")
+
+    def __init__(self, n_features: int):
+        self.count = np.zeros(n_features, dtype=np.int64)
+        self.mean = np.zeros(n_features)
+
+    def update(self, block: np.ndarray, start: int = 0) -> "ColumnMeans":
+        present = ~np.isnan(block)
+        n_b = present.sum(axis=0)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean_b = np.where(n_b > 0, np.where(present, block, 0.0).sum(axis=0) / np.maximum(n_b, 1), 0.0)
+        self._combine(n_b, mean_b)
+        return self
+
+    def merge(self, other: "ColumnMeans") -> "ColumnMeans":
+        self._combine(other.count, other.mean)
+        return self
+
+    def _combine(self, n_b: np.ndarray, mean_b: np.ndarray) -> None:
+        n = self.count + n_b
+        weight = np.divide(n_b, n, out=np.zeros(n.shape), where=n > 0)
+        self.mean = self.mean + (mean_b - self.mean) * weight
+        self.count = n

@@ -1,0 +1,132 @@
+"""The samples x samples Gram matrix, folded over blocks of whole features.
+
+When samples are few and features many (or samples are stored as columns, as
+genomic stores do), ``G = Xc Xc^T`` (n x n) is small while ``Xc^T Xc`` is
+not.  A block holding whole features knows each feature's mean and spread
+exactly, so every block is centered (and scaled) on its own and the blocks'
+contributions simply add: no merge correction is needed along this axis.
+
+The loadings are recovered afterwards by one more pass,
+``V = Xc^T U diag(1 / sqrt(lambda))`` (:class:`FeatureProjection`).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from rankfold.errors import DataError
+from rankfold.folds.base import FoldState
+
+
+def center_features(block: np.ndarray, standardize: bool) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Center (and scale) each row of a ``(features, samples)`` block in place.
+
+    Missing entries (NaN) are left for the caller's policy to have handled:
+    under ``fill-mean`` they take the feature's mean, i.e. become 0 here.
+
+    Returns
+    -------
+    block : ndarray, shape (f, n)
+        The centered (scaled) block; the same memory as the input.
+    center : ndarray, shape (f,)
+        Mean of each feature over present values.
+    scale : ndarray, shape (f,)
+        Standard deviation (ddof=1) of the filled feature, or ones.
+    """
+    present = ~np.isnan(block)
+    count = present.sum(axis=1)
+    center = np.where(present, block, 0.0).sum(axis=1) / np.maximum(count, 1)
+    block -= center[:, None]
+    block[~present] = 0.0
+    n = block.shape[1]
+    if standardize:
+        scale = np.sqrt(np.einsum("ij,ij->i", block, block) / max(n - 1, 1))
+        block /= np.where(scale > 0, scale, 1.0)[:, None]
+    else:
+        scale = np.ones(block.shape[0])
+    return block, center, scale
+
+
+class SampleGram(FoldState):
+    """Running ``Xc Xc^T`` over feature blocks, with each feature's center and scale.
+
+    Parameters
+    ----------
+    n_samples, n_features : int
+        Shape of the table; the state holds ``n*n + 2*m`` float64 values.
+    standardize : bool
+        Scale each feature to unit variance (correlation PCA).
+
+    Notes
+    -----
+    ``update`` costs ``2 * f * n**2`` flops for a block of ``f`` features.
+    """
+
+    _fields = ("gram", "center", "scale", "seen", "sumsq", "standardize")
+    feature_names: tuple[str, ...] | None = None  # for messages only; not serialized
+
+    def __init__(self, n_samples: int, n_features: int, standardize: bool = False):
+        self.gram = np.zeros((n_samples, n_samples))
+        self.center = np.zeros(n_features)
+        self.scale = np.ones(n_features)
+        self.seen = np.zeros(n_features, dtype=bool)
+        self.sumsq = 0.0
+        self.standardize = bool(standardize)
+
+    def update(self, block: np.ndarray, start: int = 0) -> "SampleGram":
+        """Fold a ``(features, n_samples)`` float64 block starting at feature ``start``."""
+        stop = start + block.shape[0]
+        block, center, scale = center_features(block, self.standardize)
+        if self.standardize and np.any(scale == 0):
+            j = start + int(np.flatnonzero(scale == 0)[0])
+            name = self.feature_names[j] if self.feature_names else f"#{j}"
+            raise DataError(
+                f"feature {name} is constant, so it has no correlation to scale; "
+                "leave it out, or drop --standardize to analyse covariances")
+        self.center[start:stop] = center
+        self.scale[start:stop] = scale
+        self.seen[start:stop] = True
+        self.sumsq += float(np.einsum("ij,ij->", block, block))
+        self.gram += block.T @ block
+        return self
+
+    def merge(self, other: "SampleGram") -> "SampleGram":
+        """Combine with a state over a disjoint set of features."""
+        self.gram += other.gram
+        self.center = np.where(other.seen, other.center, self.center)
+        self.scale = np.where(other.seen, other.scale, self.scale)
+        self.seen = self.seen | other.seen
+        self.sumsq += other.sumsq
+        return self
+
+
+class FeatureProjection(FoldState):
+    """Second pass of the sample-Gram route: loadings ``Xc^T W`` block by block.
+
+    Parameters
+    ----------
+    weights : ndarray, shape (n_samples, k)
+        ``U / sqrt(lambda)``, the left singular vectors over singular values.
+    center, scale : ndarray, shape (m,)
+        From the first pass, so that every block is centered identically.
+    """
+
+    _fields = ("weights", "center", "scale", "loadings")
+
+    def __init__(self, weights: np.ndarray, center: np.ndarray, scale: np.ndarray):
+        self.weights = weights
+        self.center = center
+        self.scale = scale
+        self.loadings = np.zeros((center.shape[0], weights.shape[1]))
+
+    def update(self, block: np.ndarray, start: int = 0) -> "FeatureProjection":
+        stop = start + block.shape[0]
+        block -= self.center[start:stop, None]
+        block[np.isnan(block)] = 0.0
+        block /= self.scale[start:stop, None]
+        self.loadings[start:stop] = block @ self.weights
+        return self
+
+    def merge(self, other: "FeatureProjection") -> "FeatureProjection":
+        self.loadings += other.loadings  # disjoint feature ranges: the rest are zeros
+        return self

@@ -1,0 +1,163 @@
+"""The result store: one Zarr v3 group, written under a temporary name, then renamed.
+
+Layout (dimension names in brackets, so that ``xarray.open_zarr`` reads it)::
+
+    RESULT.zarr/
+      zarr.json            group attributes (see ATTRIBUTES below)
+      loadings             float64 [feature, component]
+      variance             float64 [component]   eigenvalues of the covariance (ddof=1)
+      variance_fraction    float64 [component]   variance / total variance
+      center               float64 [feature]     subtracted column means
+      scale                float64 [feature]     divisors (standard deviations, or ones)
+      feature_names        string  [feature]
+      component            int32   [component]   1, 2, ... (a coordinate for xarray)
+      scores               float32 [sample, component]  when the route gives them for free
+      sample_ids           [sample]               when the source has an id column
+
+A store that is being written lives at ``.NAME.partial-PID`` beside the target
+and only becomes ``NAME`` once every array and attribute is on disk, so a
+store found under the requested name is always complete.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+from dataclasses import dataclass
+
+import numpy as np
+
+from rankfold.errors import OutputError
+
+FORMAT_VERSION = 1
+FORMAT_KEY = "rankfold_format"
+
+
+@dataclass(frozen=True)
+class Result:
+    """A decomposition read back from (or just written to) a result store.
+
+    Attributes
+    ----------
+    path : str
+    loadings : ndarray, shape (m, k)
+        Orthonormal columns: the principal axes in feature space.
+    variance : ndarray, shape (k,)
+        Variance along each component (covariance eigenvalues, ddof=1), descending.
+    variance_fraction : ndarray, shape (k,)
+        ``variance / total_variance``.
+    center, scale : ndarray, shape (m,)
+        The transformation applied before decomposing: ``(x - center) / scale``.
+    feature_names : ndarray of str, shape (m,)
+    scores : ndarray, shape (n, k), or None
+    sample_ids : ndarray, shape (n,), or None
+    attrs : dict
+        Route, rank, counts, total variance, parameters, source fingerprint,
+        library versions and per-pass timings.
+    """
+
+    path: str
+    loadings: np.ndarray
+    variance: np.ndarray
+    variance_fraction: np.ndarray
+    center: np.ndarray
+    scale: np.ndarray
+    feature_names: np.ndarray
+    scores: np.ndarray | None
+    sample_ids: np.ndarray | None
+    attrs: dict
+
+    @property
+    def route(self) -> str:
+        return self.attrs["route"]
+
+    @property
+    def rank(self) -> int:
+        return int(self.attrs["rank"])
+
+    @property
+    def total_variance(self) -> float:
+        return float(self.attrs["total_variance"])
+
+    @property
+    def n_samples(self) -> int:
+        return int(self.attrs["n_samples"])
+
+    @property
+    def n_features(self) -> int:
+        return int(self.attrs["n_features"])
+
+
+def open_result(path: str) -> Result:
+    """Open a result store written by :func:`rankfold.decompose`.
+
+    Raises
+    ------
+    OutputError
+        If ``path`` is not a complete rankfold result of a format this version reads.
+    """
+    import zarr
+
+    if not os.path.isdir(path):
+        raise OutputError(f"{path}: no such result folder")
+    try:
+        group = zarr.open_group(path, mode="r")
+    except Exception as exc:
+        raise OutputError(f"{path}: not a Zarr group ({type(exc).__name__}: {exc})") from None
+    attrs = dict(group.attrs)
+    version = attrs.get(FORMAT_KEY)
+    if version is None:
+        raise OutputError(f"{path}: not a rankfold result (no {FORMAT_KEY!r} attribute)")
+    if int(version) > FORMAT_VERSION:
+        raise OutputError(f"{path}: written in result format {version}, newer than the {FORMAT_VERSION} "
+                          "this rankfold reads; upgrade rankfold")
+
+    def get(name):
+        return group[name][:] if name in group else None
+
+    return Result(path, get("loadings"), get("variance"), get("variance_fraction"), get("center"),
+                  get("scale"), get("feature_names"), get("scores"), get("sample_ids"), attrs)
+
+
+def check_output_path(out: str, overwrite: bool) -> None:
+    """Refuse an existing output unless ``overwrite``; refuse an unwritable parent."""
+    if os.path.exists(out) and not overwrite:
+        raise OutputError(f"{out}: already exists; choose another --out or pass --overwrite to replace it")
+    parent = os.path.dirname(os.path.abspath(out))
+    if not os.path.isdir(parent):
+        raise OutputError(f"{out}: the folder {parent} does not exist; create it first")
+    if not os.access(parent, os.W_OK):
+        raise OutputError(f"{out}: the folder {parent} is not writable")
+
+
+def write_result(out: str, arrays: dict, attrs: dict, overwrite: bool) -> None:
+    """Write ``arrays`` (name -> (data, dims, chunks)) and ``attrs`` atomically to ``out``."""
+    import zarr
+
+    check_output_path(out, overwrite)
+    parent, name = os.path.split(os.path.abspath(out))
+    tmp = os.path.join(parent, f".{name}.partial-{os.getpid()}")
+    shutil.rmtree(tmp, ignore_errors=True)
+    try:
+        group = zarr.open_group(tmp, mode="w", zarr_format=3)
+        for key, (data, dims, chunks) in arrays.items():
+            data = np.asarray(data)
+            dtype = str if data.dtype.kind in "OUS" else data.dtype
+            arr = group.create_array(key, shape=data.shape, dtype=dtype, chunks=chunks or data.shape or None,
+                                     dimension_names=dims)
+            arr[...] = data.astype(str) if dtype is str else data
+        group.attrs.update(attrs)
+        group.attrs[FORMAT_KEY] = FORMAT_VERSION  # written last: marks the store complete
+        if os.path.exists(out):
+            trash = os.path.join(parent, f".{name}.replaced-{os.getpid()}")
+            os.rename(out, trash)
+            os.rename(tmp, out)
+            shutil.rmtree(trash, ignore_errors=True)
+        else:
+            os.rename(tmp, out)
+    except OSError as exc:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise OutputError(f"{out}: cannot write the result ({exc.strerror or exc}); nothing was left behind") from None
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise

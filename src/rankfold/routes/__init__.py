@@ -1,0 +1,11 @@
+"""Exact routes to the principal components: in memory, feature Gram, sample Gram.
+
+Each route module holds one function ``run(inp: RouteInput) -> Decomposition``
+and a ``fixed_bytes(n, m, rank)`` estimate of the memory its state needs.
+"""
+
+from rankfold.routes import features, memory, samples
+
+ROUTES = {"memory": memory, "features": features, "samples": samples}
+
+__all__ = ["ROUTES"]

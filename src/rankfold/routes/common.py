@@ -1,0 +1,118 @@
+"""What every route shares: its inputs, its output, block preparation, pass running."""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from rankfold.errors import DataError
+from rankfold.linalg import sign_flips
+from rankfold.sources.base import Partition, Source
+from rankfold.sources.readahead import iter_blocks
+
+ProgressCallback = Callable[[dict], None]
+
+
+@dataclass(frozen=True)
+class RouteInput:
+    """Validated parameters a route needs (checked once in :func:`rankfold.decompose`)."""
+
+    source: Source
+    rank: int
+    standardize: bool
+    missing: str
+    memory_limit: int
+    progress: ProgressCallback | None = None
+
+
+@dataclass
+class PassRecord:
+    """What one pass over the data cost."""
+
+    name: str
+    axis: str
+    blocks: int
+    largest_block: int
+    bytes_read: int
+    seconds: float
+
+    def as_dict(self) -> dict:
+        return dict(self.__dict__)
+
+
+@dataclass
+class Decomposition:
+    """A route's output, before it is written to a result store.
+
+    Shapes: ``loadings`` (m, k); ``variance`` (k,); ``center``, ``scale`` (m,);
+    ``scores`` (n, k) or None when the route does not produce them for free.
+    """
+
+    route: str
+    loadings: np.ndarray
+    variance: np.ndarray
+    total_variance: float
+    center: np.ndarray
+    scale: np.ndarray
+    n_samples: int
+    scores: np.ndarray | None = None
+    passes: list[PassRecord] = field(default_factory=list)
+
+    def with_sign_rule(self) -> "Decomposition":
+        """Apply the documented sign rule (:mod:`rankfold.linalg`) in place."""
+        flips = sign_flips(self.loadings)
+        self.loadings *= flips
+        if self.scores is not None:
+            self.scores *= flips
+        return self
+
+
+def run_pass(name: str, inp: RouteInput, partition: Partition, state,
+             prepare: Callable[[np.ndarray, int], np.ndarray]) -> tuple[object, PassRecord]:
+    """Fold every block of ``partition`` into ``state`` after ``prepare``; time it."""
+    source = inp.source
+    t0 = time.perf_counter()
+    total = len(partition)
+    read = 0
+    for index, start, block in iter_blocks(source, partition):
+        read += block.size * source.storage_dtype.itemsize
+        state.update(prepare(block, start), start)
+        del block
+        if inp.progress is not None:
+            inp.progress({"pass": name, "block": index + 1, "blocks": total, "bytes": read,
+                          "seconds": time.perf_counter() - t0})
+    record = PassRecord(name, partition.axis, total, partition.largest, read, time.perf_counter() - t0)
+    return state, record
+
+
+def check_values(block: np.ndarray, start: int, axis: str, inp: RouteInput,
+                 allow_missing: bool) -> None:
+    """Refuse infinities always, and missing values unless a fill policy is set.
+
+    Messages give the count in the block and the first position by sample
+    number and feature name, so the user can find the bad value.
+    """
+    if np.isfinite(block).all():
+        return
+    source = inp.source
+    nan = np.isnan(block)
+    inf = ~nan & ~np.isfinite(block)
+
+    def where(mask: np.ndarray) -> str:
+        r, c = np.unravel_index(int(np.argmax(mask)), mask.shape)
+        sample, feature = (start + r, c) if axis == "samples" else (c, start + r)
+        return f"sample {sample:,} (counting from 0), feature {source.feature_names[feature]!r}"
+
+    span = f"{axis} {start:,}-{start + block.shape[0] - 1:,}"
+    if inf.any():
+        raise DataError(
+            f"{source.path}: {int(inf.sum()):,} infinite value(s) in {span}; first at {where(inf)}. "
+            "Infinities have no mean or variance: replace or remove them before decomposing.")
+    if nan.any() and not allow_missing:
+        raise DataError(
+            f"{source.path}: {int(nan.sum()):,} missing value(s) in {span} (the first block holding any; "
+            f"later blocks were not counted); first at {where(nan)}. Fill them with the column mean "
+            "with --missing fill-mean (missing='fill-mean'), or clean the data.")

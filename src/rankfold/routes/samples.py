@@ -1,0 +1,63 @@
+"""Sample-Gram route: fold blocks of whole features into the n x n Gram matrix.
+
+For tables with few samples and many features, or samples stored as columns.
+Pass 1 folds ``G = Xc Xc^T`` (each feature block centered, filled and scaled
+on its own, so missing values never need a pass of their own); the top
+eigenpairs ``G u = lambda u`` give scores ``u * sqrt(lambda)`` directly; pass 2
+recovers the loadings ``Xc^T u / sqrt(lambda)``.  Cost about
+``2 * m * n**2 + 2 * m * n * k`` flops; memory three n x n float64 matrices.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from rankfold.errors import DataError
+from rankfold.folds import FeatureProjection, SampleGram
+from rankfold.linalg import top_eigh
+from rankfold.memory import block_budget
+from rankfold.routes.common import Decomposition, RouteInput, check_values, run_pass
+
+NAME = "samples"
+
+
+def fixed_bytes(n_samples: int, n_features: int, rank: int) -> int:
+    """The Gram matrix, one block product, the eigenproblem; centers, scales and loadings."""
+    return 3 * n_samples * n_samples * 8 + n_features * (3 + rank) * 8 + 2 * n_samples * rank * 8
+
+
+def run(inp: RouteInput) -> Decomposition:
+    source = inp.source
+    n, m = source.shape
+    if n < 2:
+        raise DataError(f"{source.path}: {n} sample(s); a variance needs at least two")
+    budget = block_budget(inp.memory_limit, fixed_bytes(n, m, inp.rank) + source.fixed_read_bytes("features"),
+                          source.bytes_per_unit("features"), "the sample-Gram route")
+    partition = source.partition("features", budget)
+    fill = inp.missing == "fill-mean"
+
+    def prepare(block, start):
+        check_values(block, start, "features", inp, allow_missing=fill)
+        if fill:
+            empty = np.flatnonzero(np.isnan(block).all(axis=1))
+            if empty.size:
+                raise DataError(f"{source.path}: feature {source.feature_names[start + empty[0]]!r} holds "
+                                "no values at all, so there is no mean to fill with; leave it out")
+        return block
+
+    state = SampleGram(n, m, inp.standardize)
+    state.feature_names = source.feature_names
+    state, gram_pass = run_pass("sample Gram", inp, partition, state, prepare)
+    values, vectors = top_eigh(state.gram, inp.rank)
+    del state.gram
+    values = np.maximum(values, 0.0)  # round-off can leave tiny negatives in a PSD matrix
+    if np.any(values == 0):
+        raise DataError(f"{source.path}: the data has rank below {inp.rank} after centering; "
+                        f"ask for at most {int(np.count_nonzero(values))} component(s)")
+    sigma = np.sqrt(values)
+    projection = FeatureProjection(vectors / sigma, state.center, state.scale)
+    projection, load_pass = run_pass("loadings", inp, partition, projection, lambda b, s: b)
+    result = Decomposition(NAME, projection.loadings, values / (n - 1), state.sumsq / (n - 1),
+                           state.center, state.scale, n, scores=vectors * sigma,
+                           passes=[gram_pass, load_pass])
+    return result.with_sign_rule()

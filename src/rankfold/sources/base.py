@@ -1,0 +1,178 @@
+"""The one interface every table format implements.
+
+A :class:`Source` is a 2-D numeric table seen as samples x features, whatever
+its layout on disk.  It knows its shape, feature names and storage dtype
+without reading data, and it reads any contiguous range of samples or of
+features on its own, so that a pass can be cut into independent block ranges
+(for read-ahead now, for checkpoints and cluster workers later).
+
+Blocks always come back as float64 with NaN for missing values, oriented with
+the blocking axis first:
+
+* ``read("samples", a, b)`` -> array of shape ``(b - a, n_features)``
+* ``read("features", a, b)`` -> array of shape ``(b - a, n_samples)``
+
+Converting in the reader (which runs ahead on its own thread) keeps the
+arithmetic side free of dtype cases and lets decoding overlap the GEMM.
+"""
+
+from __future__ import annotations
+
+import fnmatch
+from abc import ABC, abstractmethod
+from dataclasses import dataclass
+from typing import Literal
+
+import numpy as np
+
+from rankfold.errors import SourceError, UsageError
+
+Axis = Literal["samples", "features"]
+AXES: tuple[str, str] = ("samples", "features")
+
+# Bytes held per element of one block while it is in flight: the float64 block
+# the fold works on, the float64 block the reader is filling, the one waiting
+# in the read-ahead queue, plus the raw decoded bytes (added per source).
+FLOAT_BYTES_IN_FLIGHT = 3 * 8
+
+
+@dataclass(frozen=True)
+class Partition:
+    """Half-open ranges cutting one axis of a source into blocks.
+
+    Parameters
+    ----------
+    axis : {"samples", "features"}
+        The axis being cut; every block holds whole units of this axis.
+    bounds : tuple of (int, int)
+        Consecutive ``(start, stop)`` ranges covering ``[0, length)``.
+    """
+
+    axis: str
+    bounds: tuple[tuple[int, int], ...]
+
+    @classmethod
+    def regular(cls, axis: str, length: int, size: int, align: int = 1) -> "Partition":
+        """Cut ``length`` units into blocks of ``size`` rounded down to ``align``."""
+        size = max(1, int(size))
+        if align > 1 and size >= align:
+            size -= size % align
+        edges = list(range(0, length, size)) + [length]
+        return cls(axis, tuple(zip(edges[:-1], edges[1:])))
+
+    def __len__(self) -> int:
+        return len(self.bounds)
+
+    @property
+    def largest(self) -> int:
+        """Number of units in the largest block."""
+        return max((b - a for a, b in self.bounds), default=0)
+
+
+class Source(ABC):
+    """A numeric table readable in blocks of samples or of features.
+
+    Subclasses set ``path``, ``kind``, ``n_samples``, ``n_features``,
+    ``feature_names``, ``storage_dtype``, ``native_axis`` and ``sample_ids``
+    in their constructor and implement :meth:`read` and
+    :meth:`fingerprint`.
+    """
+
+    path: str
+    kind: str
+    n_samples: int
+    n_features: int
+    feature_names: tuple[str, ...]
+    storage_dtype: np.dtype
+    native_axis: str
+    sample_ids: np.ndarray | None = None
+    missing_code: float | None = None
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        """``(n_samples, n_features)``."""
+        return (self.n_samples, self.n_features)
+
+    def length(self, axis: str) -> int:
+        """Number of units along ``axis``."""
+        return self.n_samples if axis == "samples" else self.n_features
+
+    def other_length(self, axis: str) -> int:
+        """Number of values in one unit of ``axis`` (a sample's features or a feature's samples)."""
+        return self.n_features if axis == "samples" else self.n_samples
+
+    def bytes_per_unit(self, axis: str) -> int:
+        """Peak bytes one unit of ``axis`` costs while a block is in flight."""
+        return self.other_length(axis) * (FLOAT_BYTES_IN_FLIGHT + 2 * self.storage_dtype.itemsize)
+
+    def alignment(self, axis: str) -> int:
+        """Preferred block-size multiple along ``axis`` (a storage chunk), 1 if none."""
+        return 1
+
+    def fixed_read_bytes(self, axis: str) -> int:
+        """Bytes a read needs regardless of block size (decoder buffers)."""
+        return 0
+
+    def partition(self, axis: str, max_block_bytes: int) -> Partition:
+        """Cut ``axis`` into blocks that each cost at most ``max_block_bytes`` in flight."""
+        _check_axis(axis)
+        units = max_block_bytes // max(1, self.bytes_per_unit(axis))
+        return Partition.regular(axis, self.length(axis), max(1, units), self.alignment(axis))
+
+    @abstractmethod
+    def read(self, axis: str, start: int, stop: int) -> np.ndarray:
+        """Read units ``[start, stop)`` of ``axis`` as float64, NaN for missing."""
+
+    @abstractmethod
+    def fingerprint(self) -> dict:
+        """Identity of the data on disk: paths, sizes, modification times, shape."""
+
+    def close(self) -> None:
+        """Release open files and threads (idempotent)."""
+
+    def describe(self) -> str:
+        """One line naming the source, its shape and layout."""
+        return (f"{self.kind} {self.path}: {self.n_samples:,} samples x "
+                f"{self.n_features:,} features, {self.storage_dtype}, "
+                f"samples stored as {'rows' if self.native_axis == 'samples' else 'columns'}")
+
+    def _apply_missing_code(self, block: np.ndarray) -> np.ndarray:
+        if self.missing_code is not None:
+            block[block == self.missing_code] = np.nan
+        return block
+
+
+def _check_axis(axis: str) -> None:
+    if axis not in AXES:
+        raise UsageError(f"axis must be 'samples' or 'features', got {axis!r}")
+
+
+def check_range(source: Source, axis: str, start: int, stop: int) -> None:
+    """Validate a block range once, at the boundary of :meth:`Source.read`."""
+    _check_axis(axis)
+    n = source.length(axis)
+    if not (0 <= start <= stop <= n):
+        raise UsageError(f"block range [{start}, {stop}) is outside 0..{n} along {axis}")
+
+
+def select_names(available: list[str], columns: list[str] | None, where: str) -> list[int]:
+    """Indices of ``available`` picked by names or fnmatch patterns, in table order.
+
+    A pattern that matches nothing is an error: a typo must not silently drop
+    features from the decomposition.
+    """
+    if not columns:
+        return list(range(len(available)))
+    picked: set[int] = set()
+    for pattern in columns:
+        if any(ch in pattern for ch in "*?["):
+            hits = [i for i, name in enumerate(available) if fnmatch.fnmatchcase(name, pattern)]
+        else:
+            hits = [i for i, name in enumerate(available) if name == pattern]
+        if not hits:
+            shown = ", ".join(available[:8]) + (", ..." if len(available) > 8 else "")
+            raise SourceError(
+                f"{where}: no column matches {pattern!r}; available columns: {shown}. "
+                "Check the spelling or the pattern given to --columns.")
+        picked.update(hits)
+    return sorted(picked)

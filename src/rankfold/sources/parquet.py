@@ -1,0 +1,267 @@
+"""Parquet tables: one file or a folder of files sharing a schema.
+
+Rows are samples.  Blocks of samples are packed from whole row groups where a
+row group fits the block budget, so each row group is decoded once; pyarrow
+decodes the selected columns of a row group in parallel.  A row group larger
+than the budget is streamed in record batches, and a reader kept per row group
+continues where the previous block stopped, so a sequential pass still decodes
+every row once.
+
+Integer, floating and boolean columns are read as float64 with nulls as NaN.
+"""
+
+from __future__ import annotations
+
+import bisect
+import os
+
+import numpy as np
+
+from rankfold.errors import SourceError
+from rankfold.sources.base import Partition, Source, check_range, select_names
+
+
+def _is_numeric(pa_type) -> bool:
+    import pyarrow.types as pt
+
+    return pt.is_integer(pa_type) or pt.is_floating(pa_type) or pt.is_boolean(pa_type)
+
+
+def _list_files(path: str) -> list[str]:
+    if os.path.isdir(path):
+        files = sorted(
+            os.path.join(root, f)
+            for root, _d, names in os.walk(path)
+            for f in names
+            if f.endswith((".parquet", ".parq", ".pq")) and not f.startswith((".", "_"))
+        )
+        if not files:
+            raise SourceError(f"{path}: folder holds no .parquet files")
+        return files
+    return [path]
+
+
+class ParquetSource(Source):
+    """A Parquet file or folder of files; samples are rows, features are columns.
+
+    Parameters
+    ----------
+    path : str
+        A ``.parquet`` file or a folder searched recursively for them (sorted by path).
+    columns : list of str, optional
+        Names or fnmatch patterns (``"sensor_*"``) of the feature columns.
+        Default: every column except ``id_column`` and ``exclude``.
+    exclude : list of str, optional
+        Names or patterns of columns to leave out.
+    id_column : str, optional
+        Column carried along as sample ids (never a feature).
+    """
+
+    kind = "parquet"
+    native_axis = "samples"
+
+    def __init__(self, path: str, *, columns=None, exclude=None, id_column=None,
+                 missing_code: float | None = None):
+        import pyarrow.parquet as pq
+
+        self.path = path
+        self.missing_code = missing_code
+        self.files = _list_files(path)
+        self._handles: dict[int, object] = {}
+        schemas = []
+        self._rg_rows: list[list[int]] = []
+        for f in self.files:
+            try:
+                meta = pq.read_metadata(f)
+            except Exception as exc:
+                raise SourceError(f"{f}: not a readable Parquet file ({type(exc).__name__}: {exc})") from None
+            schemas.append(meta.schema.to_arrow_schema())
+            self._rg_rows.append([meta.row_group(i).num_rows for i in range(meta.num_row_groups)])
+        first = schemas[0]
+        for f, schema in zip(self.files[1:], schemas[1:]):
+            _check_same_schema(self.files[0], first, f, schema)
+
+        names = list(first.names)
+        if len(set(names)) != len(names):
+            dup = sorted({n for n in names if names.count(n) > 1})
+            raise SourceError(f"{self.files[0]}: duplicate column names {', '.join(dup)}")
+        if id_column is not None and id_column not in names:
+            raise SourceError(f"{path}: id column {id_column!r} not found; columns: {', '.join(names[:8])}")
+        candidates = [n for n in names if n != id_column]
+        if exclude:
+            dropped = {candidates[i] for i in select_names(candidates, list(exclude), f"{path} (--exclude)")}
+            candidates = [n for n in candidates if n not in dropped]
+        picked = [candidates[i] for i in select_names(candidates, columns, path)]
+        bad = [f"{n} ({first.field(n).type})" for n in picked if not _is_numeric(first.field(n).type)]
+        if bad:
+            raise SourceError(
+                f"{path}: non-numeric column(s) {', '.join(bad)}; select numeric columns with "
+                "--columns or leave these out with --exclude")
+        if not picked:
+            raise SourceError(f"{path}: no feature columns left after selection")
+        self.feature_names = tuple(picked)
+        self.id_column = id_column
+        self.storage_dtype = np.result_type(*(np.dtype(first.field(n).type.to_pandas_dtype()) for n in picked))
+        self.n_features = len(picked)
+        # Global row offsets of every (file, row group), for locating blocks.
+        self._groups: list[tuple[int, int, int]] = []  # (file index, row group, first global row)
+        row = 0
+        for fi, sizes in enumerate(self._rg_rows):
+            for rg, n in enumerate(sizes):
+                if n:
+                    self._groups.append((fi, rg, row))
+                    row += n
+        self._group_starts = [g[2] for g in self._groups]
+        self.n_samples = row
+        self._streams: dict[tuple[int, int], list] = {}
+
+    # -- helpers ---------------------------------------------------------
+    def _file(self, fi: int):
+        import pyarrow.parquet as pq
+
+        if fi not in self._handles:
+            try:
+                self._handles[fi] = pq.ParquetFile(self.files[fi])
+            except Exception as exc:
+                raise SourceError(f"{self.files[fi]}: cannot open ({type(exc).__name__}: {exc})") from None
+        return self._handles[fi]
+
+    def _group_rows(self, gi: int) -> int:
+        fi, rg, _ = self._groups[gi]
+        return self._rg_rows[fi][rg]
+
+    def _to_float(self, table, out: np.ndarray, row0: int, names) -> None:
+        """Write the columns of an Arrow table into ``out[row0:, j]`` as float64 with NaN."""
+        import pyarrow as pa
+
+        n = table.num_rows
+        for j, name in enumerate(names):
+            col = table.column(name)
+            if col.null_count or not pa.types.is_floating(col.type):
+                col = col.cast(pa.float64())
+                if col.null_count:
+                    col = col.fill_null(np.nan)
+            out[row0:row0 + n, j] = col.to_numpy()
+
+    def _read_group_part(self, gi: int, lo: int, hi: int, out: np.ndarray, row0: int) -> None:
+        """Rows ``[lo, hi)`` of row group ``gi`` into ``out`` starting at ``row0``."""
+        fi, rg, _ = self._groups[gi]
+        pf = self._file(fi)
+        names = list(self.feature_names)
+        try:
+            if lo == 0 and hi == self._group_rows(gi):
+                self._to_float(pf.read_row_group(rg, columns=names, use_threads=True), out, row0, names)
+                return
+            # Part of an oversized row group: continue a batch stream when the
+            # previous block ended exactly here, otherwise start one and skip.
+            stream = self._streams.pop((gi, lo), None)
+            if stream is None:
+                batches = pf.iter_batches(batch_size=max(1024, min(hi - lo, 65536)), row_groups=[rg],
+                                          columns=names, use_threads=True)
+                stream = [batches, 0, None]  # iterator, row of the held batch, held batch
+            batches, at, held = stream
+            pos = lo
+            while pos < hi:
+                if held is None or at + held.num_rows <= pos:
+                    if held is not None:
+                        at += held.num_rows
+                    held = next(batches)
+                    continue
+                a, b = pos - at, min(hi, at + held.num_rows) - at
+                self._to_float(held.slice(a, b - a), out, row0 + pos - lo, names)
+                pos = at + b
+            self._streams[(gi, hi)] = [batches, at, held]
+        except SourceError:
+            raise
+        except Exception as exc:
+            raise SourceError(f"{self.files[fi]}: cannot read row group {rg} "
+                              f"({type(exc).__name__}: {exc})") from None
+
+    # -- Source ------------------------------------------------------------
+    def alignment(self, axis: str) -> int:
+        return 1
+
+    def partition(self, axis: str, max_block_bytes: int) -> Partition:
+        """Pack whole row groups into sample blocks; split only oversized groups."""
+        if axis == "features":
+            return super().partition(axis, max_block_bytes)
+        units = max(1, max_block_bytes // self.bytes_per_unit("samples"))
+        bounds: list[tuple[int, int]] = []
+        start = 0
+        for gi in range(len(self._groups)):
+            g0 = self._groups[gi][2]
+            g1 = g0 + self._group_rows(gi)
+            if g1 - start <= units:
+                continue
+            if g0 > start:
+                bounds.append((start, g0))
+                start = g0
+            while g1 - start > units:
+                bounds.append((start, start + units))
+                start += units
+        if start < self.n_samples:
+            bounds.append((start, self.n_samples))
+        return Partition("samples", tuple(bounds))
+
+    def read(self, axis: str, start: int, stop: int) -> np.ndarray:
+        check_range(self, axis, start, stop)
+        if axis == "features":
+            return self._read_features(start, stop)
+        out = np.empty((stop - start, self.n_features), dtype=np.float64)
+        gi = max(0, bisect.bisect_right(self._group_starts, start) - 1)
+        row = start
+        while row < stop:
+            g0 = self._groups[gi][2]
+            g1 = g0 + self._group_rows(gi)
+            hi = min(stop, g1)
+            self._read_group_part(gi, row - g0, hi - g0, out, row - start)
+            row = hi
+            gi += 1
+        return self._apply_missing_code(out)
+
+    def _read_features(self, start: int, stop: int) -> np.ndarray:
+        names = list(self.feature_names[start:stop])
+        out = np.empty((self.n_samples, len(names)), dtype=np.float64)
+        for fi, rg, g0 in self._groups:
+            try:
+                table = self._file(fi).read_row_group(rg, columns=names, use_threads=True)
+            except Exception as exc:
+                raise SourceError(f"{self.files[fi]}: cannot read row group {rg} "
+                                  f"({type(exc).__name__}: {exc})") from None
+            self._to_float(table, out, g0, names)
+        return self._apply_missing_code(np.ascontiguousarray(out.T))
+
+    def read_sample_ids(self) -> np.ndarray | None:
+        """The id column for every sample, in order, or None without one."""
+        if self.id_column is None:
+            return None
+        parts = [self._file(fi).read_row_group(rg, columns=[self.id_column]).column(0).to_numpy(zero_copy_only=False)
+                 for fi, rg, _ in self._groups]
+        return np.concatenate(parts) if parts else np.array([])
+
+    def fingerprint(self) -> dict:
+        files = []
+        for f in self.files:
+            st = os.stat(f)
+            files.append({"path": os.path.abspath(f), "bytes": st.st_size, "mtime_ns": st.st_mtime_ns})
+        return {"kind": "parquet", "path": os.path.abspath(self.path), "files": files,
+                "shape": [self.n_samples, self.n_features], "columns": list(self.feature_names)}
+
+    def close(self) -> None:
+        self._handles.clear()
+        self._streams.clear()
+
+
+def _check_same_schema(ref_file, ref, other_file, other) -> None:
+    ref_types = {f.name: f.type for f in ref}
+    for field in other:
+        if field.name not in ref_types:
+            raise SourceError(f"{other_file}: column {field.name!r} is not in {ref_file}; "
+                              "all files of a folder must share one schema")
+        if ref_types[field.name] != field.type:
+            raise SourceError(f"{other_file}: column {field.name!r} is {field.type} here but "
+                              f"{ref_types[field.name]} in {ref_file}; all files of a folder must share one schema")
+    missing = [n for n in ref_types if n not in set(other.names)]
+    if missing:
+        raise SourceError(f"{other_file}: column {missing[0]!r} of {ref_file} is missing; "
+                          "all files of a folder must share one schema")
