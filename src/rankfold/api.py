@@ -120,7 +120,11 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
                   "columns": list(columns) if columns else None,
                   "exclude": list(exclude) if exclude else None, "id_column": id_column}
         attrs = _attributes(src, dec, params, reasons, seconds)
-        sample_ids = src.read_sample_ids() if hasattr(src, "read_sample_ids") else src.sample_ids
+        # Ids go with scores; reading an id column of a billion rows for nothing would
+        # break the memory ceiling, so they are read only when scores are stored.
+        sample_ids = None
+        if dec.scores is not None:
+            sample_ids = src.read_sample_ids()
         if out is None:
             return Result(None, dec.loadings, dec.variance, dec.variance / dec.total_variance, dec.center,
                           dec.scale, np.asarray(src.feature_names), dec.scores, sample_ids, attrs)

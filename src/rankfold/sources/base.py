@@ -127,6 +127,10 @@ class Source(ABC):
     def fingerprint(self) -> dict:
         """Identity of the data on disk: paths, sizes, modification times, shape."""
 
+    def read_sample_ids(self) -> np.ndarray | None:
+        """Every sample's id in order, or None when the source has none."""
+        return self.sample_ids
+
     def close(self) -> None:
         """Release open files and threads (idempotent)."""
 
