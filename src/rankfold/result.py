@@ -12,7 +12,7 @@ Layout (dimension names in brackets, so that ``xarray.open_zarr`` reads it)::
       feature_names        string  [feature]
       component            int32   [component]   1, 2, ... (a coordinate for xarray)
       scores               float32 [sample, component]  when the route gives them for free
-      sample_ids           [sample]               when the source has an id column
+      sample_ids           [sample]               beside scores, when the source has ids
 
 A store that is being written lives at ``.NAME.partial-PID`` beside the target
 and only becomes ``NAME`` once every array and attribute is on disk, so a

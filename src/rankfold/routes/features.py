@@ -80,5 +80,6 @@ def finish(gram: FeatureGram, inp: RouteInput, passes: list) -> Decomposition:
         cov /= scale[None, :]
     total = float(np.trace(cov))
     values, vectors = top_eigh(cov, inp.rank)
+    values = np.maximum(values, 0.0)  # round-off can leave tiny negatives in a PSD matrix
     return Decomposition(NAME, vectors, values, total, gram.mean, scale, gram.count,
                          passes=passes).with_sign_rule()

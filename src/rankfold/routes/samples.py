@@ -50,10 +50,14 @@ def run(inp: RouteInput) -> Decomposition:
     state, gram_pass = run_pass("sample Gram", inp, partition, state, prepare)
     values, vectors = top_eigh(state.gram, inp.rank)
     del state.gram
-    values = np.maximum(values, 0.0)  # round-off can leave tiny negatives in a PSD matrix
-    if np.any(values == 0):
-        raise DataError(f"{source.path}: the data has rank below {inp.rank} after centering; "
-                        f"ask for at most {int(np.count_nonzero(values))} component(s)")
+    # An eigenvalue at round-off level means the centered table has no such direction;
+    # dividing by its square root would produce a loading of noise, not a unit vector.
+    # The threshold is the usual numerical-rank tolerance, size * eps * largest.
+    tol = max(n, m) * np.finfo(float).eps * max(values[0], 0.0)
+    if values[-1] <= tol:
+        kept = int(np.count_nonzero(values > tol))
+        raise DataError(f"{source.path}: the centered table has numerical rank {kept}, below the "
+                        f"requested {inp.rank}; ask for at most {kept} component(s)")
     sigma = np.sqrt(values)
     projection = FeatureProjection(vectors / sigma, state.center, state.scale)
     projection, load_pass = run_pass("loadings", inp, partition, projection, lambda b, s: b)
