@@ -22,7 +22,7 @@ from rankfold.demo.fleet import FleetTruth, read_fleet_truth, stored_fleet_param
 from rankfold.demo.fleet import fleet_parameters
 from rankfold.demo.panel import PanelTruth, panel_parameters, read_panel_truth, stored_panel_parameters
 from rankfold.demo.panel import write_panel
-from rankfold.demo.summary import format_components, summarize_fleet, summarize_panel
+from rankfold.demo.summary import summarize_fleet, summarize_panel
 from rankfold.errors import OutputError, UsageError
 
 __all__ = [
@@ -35,7 +35,6 @@ __all__ = [
     "FleetTruth",
     "summarize_panel",
     "summarize_fleet",
-    "format_components",
 ]
 
 PANEL_MARKERS = 20_000

@@ -18,34 +18,10 @@ import numpy as np
 from rankfold.demo.fleet import FleetTruth
 from rankfold.demo.fleet_design import MODE_DESCRIPTIONS
 from rankfold.demo.panel import PanelTruth
+from rankfold.report import component_table
 
 MATCH = 0.9  # |cosine| from which a component counts as a planted mode
 PARTIAL = 0.5  # ... and from which it is a blend worth naming
-
-
-def format_components(result, top: int = 5) -> list[str]:
-    """Table of the leading components' variance.
-
-    Parameters
-    ----------
-    result : Result-like
-        Needs ``variance`` and ``variance_fraction``.
-    top : int
-        Number of components to list (fewer if the result has fewer).
-
-    Returns
-    -------
-    list of str
-        A header line and one line per component: its number, variance, the
-        fraction of the total variance it carries and the running total.
-    """
-    variance = np.asarray(result.variance, dtype=float)
-    fraction = np.asarray(result.variance_fraction, dtype=float)
-    cumulative = np.cumsum(fraction)
-    lines = [f"{'component':>9}  {'variance':>11}  {'fraction':>8}  {'cumulative':>10}"]
-    for i in range(min(top, variance.size)):
-        lines.append(f"{i + 1:>9}  {variance[i]:>11.5g}  {fraction[i]:>8.2%}  {cumulative[i]:>10.2%}")
-    return lines
 
 
 def _founder_label(index: int) -> str:
@@ -125,7 +101,7 @@ def summarize_panel(result, truth: PanelTruth) -> list[str]:
         f"{truth.n_markers:,} markers, {n_founders} founder populations",
         f"computed by the {result.route!r} route, {result.rank} components kept",
         "",
-        *format_components(result),
+        *component_table(result, top=5),
     ]
     scores = _panel_scores(result, truth)
     if scores is None:
@@ -228,7 +204,7 @@ def summarize_fleet(result, truth: FleetTruth, top: int = 6) -> list[str]:
     lines[0] += f", {len(rows)} of {len(truth.channel_names)} sensor channels used"
     lines.append(f"computed by the {result.route!r} route, {result.rank} components kept")
     lines += _spread_lines(result, truth, rows)
-    lines += ["", *format_components(result, top=top), "",
+    lines += ["", *component_table(result, top=top), "",
               "|cosine| between each component's direction and each planted mode:",
               f"{'component':>9}  {'fraction':>8}  " + "  ".join(f"{m:>9}" for m in modes) + "  reading"]
     shown = min(top, cosines.shape[0])
