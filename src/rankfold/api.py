@@ -9,7 +9,7 @@ import time
 
 import numpy as np
 
-from rankfold.errors import UsageError
+from rankfold.errors import SourceError, UsageError
 from rankfold.memory import default_memory_limit, parse_memory
 from rankfold.result import Result, check_output_path, open_result, write_result
 from rankfold.routes import ROUTES
@@ -102,7 +102,8 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
     try:
         n, m = src.shape
         if n == 0 or m == 0:
-            raise UsageError(f"{src.path}: the table is empty ({n} samples x {m} features)")
+            raise SourceError(f"{src.path}: the table is empty ({n} samples x {m} features); "
+                              "check the path and the column selection")
         if not 1 <= rank <= min(n, m):
             raise UsageError(f"rank must be between 1 and min(samples, features) = {min(n, m)} "
                              f"for {src.path}; got {rank}")

@@ -137,7 +137,7 @@ def write_result(out: str, arrays: dict, attrs: dict, overwrite: bool) -> None:
     check_output_path(out, overwrite)
     parent, name = os.path.split(os.path.abspath(out))
     tmp = os.path.join(parent, f".{name}.partial-{os.getpid()}")
-    shutil.rmtree(tmp, ignore_errors=True)
+    _remove(tmp)
     try:
         group = zarr.open_group(tmp, mode="w", zarr_format=3)
         for key, (data, dims, chunks) in arrays.items():
@@ -152,12 +152,20 @@ def write_result(out: str, arrays: dict, attrs: dict, overwrite: bool) -> None:
             trash = os.path.join(parent, f".{name}.replaced-{os.getpid()}")
             os.rename(out, trash)
             os.rename(tmp, out)
-            shutil.rmtree(trash, ignore_errors=True)
+            _remove(trash)
         else:
             os.rename(tmp, out)
     except OSError as exc:
-        shutil.rmtree(tmp, ignore_errors=True)
+        _remove(tmp)
         raise OutputError(f"{out}: cannot write the result ({exc.strerror or exc}); nothing was left behind") from None
     except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
+        _remove(tmp)
         raise
+
+
+def _remove(path: str) -> None:
+    """Delete a folder tree or a file, whichever ``path`` is; ignore a missing one."""
+    if os.path.isdir(path) and not os.path.islink(path):
+        shutil.rmtree(path, ignore_errors=True)
+    elif os.path.lexists(path):
+        os.remove(path)

@@ -88,6 +88,26 @@ def run_pass(name: str, inp: RouteInput, partition: Partition, state,
     return state, record
 
 
+def check_numerical_rank(values: np.ndarray, size: int, inp: RouteInput) -> np.ndarray:
+    """Refuse components whose variance is at round-off level; return ``values`` clipped at 0.
+
+    The threshold is the usual numerical-rank tolerance, ``size * eps * largest``
+    (as in numpy.linalg.matrix_rank).  Below it a component is noise: a table whose
+    centered rank is lower than the requested rank (too few samples, duplicated or
+    constant columns) gets a clear message instead of arbitrary directions and
+    variance fractions of 0/0.
+    """
+    values = np.maximum(values, 0.0)  # round-off can leave tiny negatives in a PSD matrix
+    tol = size * np.finfo(float).eps * values[0]
+    if values[-1] <= tol:
+        kept = int(np.count_nonzero(values > tol))
+        raise DataError(f"{inp.source.path}: the centered table has numerical rank {kept}, below the "
+                        f"requested {inp.rank} (too few samples, or constant or duplicated columns); "
+                        f"ask for at most {kept} component(s)" if kept else
+                        f"{inp.source.path}: every column is constant, so there is no variance to decompose")
+    return values
+
+
 def check_values(block: np.ndarray, start: int, axis: str, inp: RouteInput,
                  allow_missing: bool) -> None:
     """Refuse infinities always, and missing values unless a fill policy is set.

@@ -14,7 +14,7 @@ from rankfold.errors import DataError
 from rankfold.folds import ColumnMeans, FeatureGram
 from rankfold.linalg import top_eigh
 from rankfold.memory import block_budget
-from rankfold.routes.common import Decomposition, RouteInput, check_values, run_pass
+from rankfold.routes.common import Decomposition, RouteInput, check_numerical_rank, check_values, run_pass
 
 NAME = "features"
 
@@ -80,6 +80,6 @@ def finish(gram: FeatureGram, inp: RouteInput, passes: list) -> Decomposition:
         cov /= scale[None, :]
     total = float(np.trace(cov))
     values, vectors = top_eigh(cov, inp.rank)
-    values = np.maximum(values, 0.0)  # round-off can leave tiny negatives in a PSD matrix
+    values = check_numerical_rank(values, max(gram.count, source.n_features), inp)
     return Decomposition(NAME, vectors, values, total, gram.mean, scale, gram.count,
                          passes=passes).with_sign_rule()

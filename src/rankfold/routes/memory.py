@@ -15,7 +15,7 @@ import scipy.linalg
 
 from rankfold.errors import DataError
 from rankfold.memory import block_budget
-from rankfold.routes.common import Decomposition, PassRecord, RouteInput, check_values
+from rankfold.routes.common import Decomposition, PassRecord, RouteInput, check_numerical_rank, check_values
 
 NAME = "memory"
 
@@ -58,6 +58,7 @@ def run(inp: RouteInput) -> Decomposition:
     total = float(np.einsum("ij,ij->", x, x)) / (n - 1)
     u, s, vt = scipy.linalg.svd(x, full_matrices=False, overwrite_a=True, check_finite=False)
     k = inp.rank
+    variance = check_numerical_rank(s[:k] ** 2 / (n - 1), max(n, m), inp)
     scores = u[:, :k] * s[:k]
-    return Decomposition(NAME, vt[:k].T.copy(), s[:k] ** 2 / (n - 1), total, center, scale, n,
+    return Decomposition(NAME, vt[:k].T.copy(), variance, total, center, scale, n,
                          scores=scores, passes=[record]).with_sign_rule()

@@ -16,7 +16,7 @@ from rankfold.errors import DataError
 from rankfold.folds import FeatureProjection, SampleGram
 from rankfold.linalg import top_eigh
 from rankfold.memory import block_budget
-from rankfold.routes.common import Decomposition, RouteInput, check_values, run_pass
+from rankfold.routes.common import Decomposition, RouteInput, check_numerical_rank, check_values, run_pass
 
 NAME = "samples"
 
@@ -50,14 +50,9 @@ def run(inp: RouteInput) -> Decomposition:
     state, gram_pass = run_pass("sample Gram", inp, partition, state, prepare)
     values, vectors = top_eigh(state.gram, inp.rank)
     del state.gram
-    # An eigenvalue at round-off level means the centered table has no such direction;
-    # dividing by its square root would produce a loading of noise, not a unit vector.
-    # The threshold is the usual numerical-rank tolerance, size * eps * largest.
-    tol = max(n, m) * np.finfo(float).eps * max(values[0], 0.0)
-    if values[-1] <= tol:
-        kept = int(np.count_nonzero(values > tol))
-        raise DataError(f"{source.path}: the centered table has numerical rank {kept}, below the "
-                        f"requested {inp.rank}; ask for at most {kept} component(s)")
+    # Dividing by the square root of a round-off eigenvalue would make a loading of
+    # noise, not a unit vector: refuse such ranks.
+    values = check_numerical_rank(values, max(n, m), inp)
     sigma = np.sqrt(values)
     projection = FeatureProjection(vectors / sigma, state.center, state.scale)
     projection, load_pass = run_pass("loadings", inp, partition, projection, lambda b, s: b)

@@ -120,8 +120,14 @@ class Source(ABC):
         return Partition.regular(axis, self.length(axis), max(1, units), self.alignment(axis))
 
     @abstractmethod
-    def read(self, axis: str, start: int, stop: int) -> np.ndarray:
-        """Read units ``[start, stop)`` of ``axis`` as float64, NaN for missing."""
+    def read(self, axis: str, start: int, stop: int, out: np.ndarray | None = None) -> np.ndarray:
+        """Read units ``[start, stop)`` of ``axis`` as float64, NaN for missing.
+
+        ``out``, when given, is a float64 C-contiguous array of shape
+        ``(stop - start, other_length(axis))`` that receives the block; reusing
+        buffers this way avoids faulting fresh pages in for every block, which
+        cost more than the float conversion itself on the development machine.
+        """
 
     @abstractmethod
     def fingerprint(self) -> dict:
@@ -146,17 +152,30 @@ class Source(ABC):
         return block
 
 
+def is_real_dtype(dtype) -> bool:
+    """Integer, floating or boolean: the dtypes a covariance makes sense of (not complex)."""
+    dtype = np.dtype(dtype)
+    return dtype.kind in "iufb"
+
+
 def _check_axis(axis: str) -> None:
     if axis not in AXES:
         raise UsageError(f"axis must be 'samples' or 'features', got {axis!r}")
 
 
-def check_range(source: Source, axis: str, start: int, stop: int) -> None:
-    """Validate a block range once, at the boundary of :meth:`Source.read`."""
+def block_buffer(source: Source, axis: str, start: int, stop: int, out: np.ndarray | None) -> np.ndarray:
+    """Validate a block range once, at the boundary of :meth:`Source.read`, and return its buffer."""
     _check_axis(axis)
     n = source.length(axis)
     if not (0 <= start <= stop <= n):
         raise UsageError(f"block range [{start}, {stop}) is outside 0..{n} along {axis}")
+    shape = (stop - start, source.other_length(axis))
+    if out is None:
+        return np.empty(shape, dtype=np.float64)
+    if out.shape != shape or out.dtype != np.float64 or not out.flags.c_contiguous:
+        raise UsageError(f"out must be a C-contiguous float64 array of shape {shape}, "
+                         f"got {out.dtype} {out.shape}")
+    return out
 
 
 def select_names(available: list[str], columns: list[str] | None, where: str) -> list[int]:

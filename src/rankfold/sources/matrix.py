@@ -14,7 +14,7 @@ import os
 
 import numpy as np
 
-from rankfold.sources.base import Source, check_range
+from rankfold.sources.base import Source, block_buffer
 
 
 class StoredMatrixSource(Source):
@@ -31,9 +31,13 @@ class StoredMatrixSource(Source):
         self.n_samples, self.n_features = (rows, cols) if samples_as == "rows" else (cols, rows)
         self.missing_code = missing_code
 
-    # -- subclass hook -------------------------------------------------
-    def _rows(self, start: int, stop: int, cols: slice | None = None) -> np.ndarray:
-        """A fresh array of stored rows ``[start, stop)`` (optionally only ``cols``)."""
+    # -- subclass hooks ------------------------------------------------
+    def _rows(self, start: int, stop: int, cols: slice) -> np.ndarray:
+        """Stored rows ``[start, stop)``, columns ``cols``, in the storage dtype."""
+        raise NotImplementedError
+
+    def _fill_rows(self, start: int, stop: int, out: np.ndarray) -> None:
+        """Whole stored rows ``[start, stop)`` converted into the float64 ``out``."""
         raise NotImplementedError
 
     def _row_step(self) -> int:
@@ -44,14 +48,12 @@ class StoredMatrixSource(Source):
     def alignment(self, axis: str) -> int:
         return self._row_step() if axis == self.native_axis else 1
 
-    def read(self, axis: str, start: int, stop: int) -> np.ndarray:
-        check_range(self, axis, start, stop)
+    def read(self, axis: str, start: int, stop: int, out: np.ndarray | None = None) -> np.ndarray:
+        out = block_buffer(self, axis, start, stop, out)
         if axis == self.native_axis:
-            # _rows returns a fresh array, so the conversion never aliases storage.
-            out = self._rows(start, stop).astype(np.float64, copy=False)
+            self._fill_rows(start, stop, out)
         else:
             rows = self.stored_shape[0]
-            out = np.empty((stop - start, rows), dtype=np.float64)
             step = self._row_step()
             for r0 in range(0, rows, step):
                 r1 = min(rows, r0 + step)

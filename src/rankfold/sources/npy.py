@@ -11,6 +11,7 @@ from __future__ import annotations
 import numpy as np
 
 from rankfold.errors import SourceError
+from rankfold.sources.base import is_real_dtype
 from rankfold.sources.matrix import StoredMatrixSource
 
 
@@ -33,8 +34,9 @@ class NpySource(StoredMatrixSource):
         if fortran:
             raise SourceError(f"{path}: Fortran-ordered .npy is not supported; save it with "
                               "numpy.save(path, numpy.ascontiguousarray(a))")
-        if not (np.issubdtype(dtype, np.number) or dtype == np.bool_):
-            raise SourceError(f"{path}: dtype {dtype} is not numeric")
+        if not is_real_dtype(dtype):
+            raise SourceError(f"{path}: dtype {dtype} is not a real number type (integer, float or "
+                              "boolean); convert the array before decomposing")
         super().__init__(path, "npy", shape, dtype, samples_as, missing_code)
         n = self.n_features
         self.feature_names = tuple(feature_names) if feature_names else _default_names(n)
@@ -43,18 +45,26 @@ class NpySource(StoredMatrixSource):
         # About 8 MB of stored rows per step when slicing columns.
         return max(1, (8 << 20) // max(1, self.stored_shape[1] * self.storage_dtype.itemsize))
 
-    def _rows(self, start: int, stop: int, cols: slice | None = None) -> np.ndarray:
-        if stop <= start:
-            return np.empty((0, self.stored_shape[1] if cols is None else cols.stop - cols.start),
-                            self.storage_dtype)
+    def _map(self, start: int, stop: int) -> np.memmap:
         row_bytes = self.stored_shape[1] * self.storage_dtype.itemsize
-        mm = np.memmap(self.path, dtype=self.storage_dtype, mode="r",
-                       offset=self._offset + start * row_bytes,
-                       shape=(stop - start, self.stored_shape[1]))
-        part = mm if cols is None else mm[:, cols]
-        out = np.array(part, dtype=np.float64 if cols is None else self.storage_dtype)
-        del part, mm  # unmaps now: the pages leave this process's resident set
-        return out
+        return np.memmap(self.path, dtype=self.storage_dtype, mode="r",
+                         offset=self._offset + start * row_bytes, shape=(stop - start, self.stored_shape[1]))
+
+    # Each map lives only for one call: dropping it unmaps the pages, so they
+    # leave this process's resident set (the page cache keeps them).
+    def _rows(self, start: int, stop: int, cols: slice) -> np.ndarray:
+        if stop <= start:
+            return np.empty((0, cols.stop - cols.start), self.storage_dtype)
+        mm = self._map(start, stop)
+        part = np.array(mm[:, cols])
+        del mm
+        return part
+
+    def _fill_rows(self, start: int, stop: int, out: np.ndarray) -> None:
+        if stop > start:
+            mm = self._map(start, stop)
+            np.copyto(out, mm)
+            del mm
 
 
 def _default_names(n: int) -> tuple[str, ...]:

@@ -18,7 +18,7 @@ import os
 import numpy as np
 
 from rankfold.errors import SourceError
-from rankfold.sources.base import Partition, Source, check_range, select_names
+from rankfold.sources.base import Partition, Source, block_buffer, select_names
 
 
 def _is_numeric(pa_type) -> bool:
@@ -138,7 +138,9 @@ class ParquetSource(Source):
         for j, name in enumerate(names):
             col = table.column(name)
             if col.null_count or not pa.types.is_floating(col.type):
-                col = col.cast(pa.float64())
+                # safe=False: integers beyond 2**53 round to the nearest float64, as
+                # numpy's astype does; Arrow's checked cast would refuse them.
+                col = col.cast(pa.float64(), safe=False)
                 if col.null_count:
                     col = col.fill_null(np.nan)
             out[row0:row0 + n, j] = col.to_numpy()
@@ -203,11 +205,10 @@ class ParquetSource(Source):
             bounds.append((start, self.n_samples))
         return Partition("samples", tuple(bounds))
 
-    def read(self, axis: str, start: int, stop: int) -> np.ndarray:
-        check_range(self, axis, start, stop)
+    def read(self, axis: str, start: int, stop: int, out: np.ndarray | None = None) -> np.ndarray:
+        out = block_buffer(self, axis, start, stop, out)
         if axis == "features":
-            return self._read_features(start, stop)
-        out = np.empty((stop - start, self.n_features), dtype=np.float64)
+            return self._read_features(start, stop, out)
         gi = max(0, bisect.bisect_right(self._group_starts, start) - 1)
         row = start
         while row < stop:
@@ -219,17 +220,17 @@ class ParquetSource(Source):
             gi += 1
         return self._apply_missing_code(out)
 
-    def _read_features(self, start: int, stop: int) -> np.ndarray:
+    def _read_features(self, start: int, stop: int, out: np.ndarray) -> np.ndarray:
+        """Columns ``[start, stop)`` for every row, as a (features, samples) block."""
         names = list(self.feature_names[start:stop])
-        out = np.empty((self.n_samples, len(names)), dtype=np.float64)
         for fi, rg, g0 in self._groups:
             try:
                 table = self._file(fi).read_row_group(rg, columns=names, use_threads=True)
             except Exception as exc:
                 raise SourceError(f"{self.files[fi]}: cannot read row group {rg} "
                                   f"({type(exc).__name__}: {exc})") from None
-            self._to_float(table, out, g0, names)
-        return self._apply_missing_code(np.ascontiguousarray(out.T))
+            self._to_float(table, out.T, g0, names)  # out.T is samples x features
+        return self._apply_missing_code(out)
 
     def read_sample_ids(self) -> np.ndarray | None:
         """The id column for every sample, in order, or None without one."""

@@ -20,6 +20,7 @@ from concurrent.futures import ThreadPoolExecutor
 import numpy as np
 
 from rankfold.errors import SourceError
+from rankfold.sources.base import is_real_dtype
 from rankfold.sources.matrix import StoredMatrixSource
 from rankfold.sources.npy import _default_names
 
@@ -73,8 +74,9 @@ class ZarrSource(StoredMatrixSource):
         if arr.ndim != 2:
             raise SourceError(f"{path}: expected a 2-D array, found {arr.ndim}-D with shape {arr.shape}")
         dtype = np.dtype(arr.dtype) if not hasattr(arr.dtype, "to_native_dtype") else arr.dtype.to_native_dtype()
-        if not (np.issubdtype(dtype, np.number) or dtype == np.bool_):
-            raise SourceError(f"{path}: dtype {dtype} is not numeric")
+        if not is_real_dtype(dtype):
+            raise SourceError(f"{path}: dtype {dtype} is not a real number type (integer, float or "
+                              "boolean); convert the array before decomposing")
         super().__init__(path, "zarr", arr.shape, dtype, samples_as, missing_code)
         self._arr = arr
         self._chunk_rows = int(arr.chunks[0])
@@ -112,26 +114,26 @@ class ZarrSource(StoredMatrixSource):
         chunk = int(np.prod(self._arr.chunks)) * self.storage_dtype.itemsize
         return 2 * READ_THREADS * chunk
 
-    def _rows(self, start: int, stop: int, cols: slice | None = None) -> np.ndarray:
-        if cols is not None:
-            return np.asarray(self._arr[start:stop, cols])
-        out = np.empty((stop - start, self.stored_shape[1]), dtype=np.float64)
+    def _rows(self, start: int, stop: int, cols: slice) -> np.ndarray:
+        return np.asarray(self._arr[start:stop, cols])
+
+    def _fill_rows(self, start: int, stop: int, out: np.ndarray) -> None:
+        """Chunk-aligned pieces decoded on ``READ_THREADS`` threads, converted into ``out``."""
         step = self._chunk_rows
         first = start - start % step
         pieces = [(max(start, r), min(stop, r + step)) for r in range(first, stop, step)]
 
         def fill(piece):
             a, b = piece
-            out[a - start:b - start] = self._arr[a:b]
+            np.copyto(out[a - start:b - start], self._arr[a:b])
 
         if len(pieces) == 1:
             fill(pieces[0])
-        else:
-            if self._pool is None:
-                self._pool = ThreadPoolExecutor(READ_THREADS, thread_name_prefix="rankfold-zarr")
-            for f in [self._pool.submit(fill, p) for p in pieces]:
-                f.result()
-        return out
+            return
+        if self._pool is None:
+            self._pool = ThreadPoolExecutor(READ_THREADS, thread_name_prefix="rankfold-zarr")
+        for f in [self._pool.submit(fill, p) for p in pieces]:
+            f.result()
 
     def close(self) -> None:
         if self._pool is not None:
