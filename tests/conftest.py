@@ -232,7 +232,13 @@ def limit_for_blocks(path: str, route: str, blocks: int, *, rank: int = 1, **ope
         axis = "samples" if route == "features" else "features"
         units = max(1, math.ceil(src.length(axis) / blocks))
         fixed = ROUTE_MODULES[route].fixed_bytes(n, m, rank) + src.fixed_read_bytes(axis)
-        return fixed + units * src.bytes_per_unit(axis)
+        unit = src.bytes_per_unit(axis)
+        if axis == "samples" and hasattr(src, "split_group_reserve"):
+            # Parquet: blocks smaller than a row group stream it, which needs a reserve
+            # (see ParquetSource.partition); whole groups do not.
+            if units < src.largest_group_rows:
+                fixed += src.split_group_reserve()
+        return fixed + units * unit
     finally:
         src.close()
 

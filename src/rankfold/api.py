@@ -10,7 +10,7 @@ import time
 import numpy as np
 
 from rankfold.errors import SourceError, UsageError
-from rankfold.memory import default_memory_limit, parse_memory
+from rankfold.memory import default_memory_limit, parse_memory, return_freed_memory_promptly
 from rankfold.result import Result, check_output_path, open_result, write_result
 from rankfold.routes import ROUTES
 from rankfold.routes.choose import choose_route
@@ -95,6 +95,7 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
         out = os.fspath(out)
         check_output_path(out, overwrite)
 
+    return_freed_memory_promptly()
     opened = isinstance(source, Source)
     src = source if opened else open_source(os.fspath(source), samples_as=samples_as, columns=columns,
                                            exclude=exclude, id_column=id_column,

@@ -8,7 +8,9 @@ and pyarrow) are not part of it.
 
 from __future__ import annotations
 
+import ctypes
 import re
+import sys
 
 from rankfold.errors import MemoryLimitError, UsageError
 
@@ -61,10 +63,13 @@ def format_bytes(n: float) -> str:
 def block_budget(limit: int, fixed: int, unit_bytes: int, what: str) -> int:
     """Bytes left for blocks in flight once ``fixed`` bytes of state are set aside.
 
+    ``unit_bytes`` is the least block memory the source can work with
+    (:meth:`rankfold.sources.base.Source.min_block_bytes`).
+
     Raises
     ------
     MemoryLimitError
-        If not even one unit (one sample or one feature) fits beside the state.
+        If not even the smallest block fits beside the state.
     """
     budget = limit - fixed
     if budget < unit_bytes:
@@ -74,3 +79,29 @@ def block_budget(limit: int, fixed: int, unit_bytes: int, what: str) -> int:
             f"{format_bytes(fixed)} and one block at least {format_bytes(unit_bytes)}; "
             f"give at least --memory-limit {format_bytes(need * 1.1)}")
     return budget
+
+
+_MMAP_THRESHOLD_SET = False
+
+
+def return_freed_memory_promptly() -> None:
+    """Make glibc map large allocations directly, so that freeing them unmaps them.
+
+    glibc raises its mmap threshold each time a large mapped buffer is freed
+    (up to 32 MB), after which block-sized buffers come from the heap and stay
+    resident after they are freed; a pass then looks one or two blocks above
+    the ceiling, and the memory stays taken after the run.  Fixing the
+    threshold at 1 MiB (which also turns the dynamic adjustment off) keeps the
+    resident set close to what is actually in use.  It is process-wide but
+    only affects allocations of 1 MiB and more; other C libraries are a no-op.
+    """
+    global _MMAP_THRESHOLD_SET
+    if _MMAP_THRESHOLD_SET or not sys.platform.startswith("linux"):
+        return
+    try:
+        libc = ctypes.CDLL("libc.so.6")
+        m_mmap_threshold = -3  # from <malloc.h>
+        libc.mallopt(m_mmap_threshold, 1 << 20)
+    except (OSError, AttributeError):
+        pass
+    _MMAP_THRESHOLD_SET = True

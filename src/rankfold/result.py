@@ -120,14 +120,37 @@ def open_result(path: str) -> Result:
 
 
 def check_output_path(out: str, overwrite: bool) -> None:
-    """Refuse an existing output unless ``overwrite``; refuse an unwritable parent."""
-    if os.path.exists(out) and not overwrite:
-        raise OutputError(f"{out}: already exists; choose another --out or pass --overwrite to replace it")
+    """Refuse an existing output unless ``overwrite``; refuse an unwritable parent.
+
+    ``overwrite`` replaces only a previous rankfold result: a mistyped ``--out``
+    must not delete a data folder.
+    """
+    if os.path.lexists(out):
+        if not overwrite:
+            raise OutputError(f"{out}: already exists; choose another --out or pass --overwrite to replace it")
+        if not _is_result(out):
+            raise OutputError(f"{out}: exists and is not a rankfold result, so --overwrite will not "
+                              "replace it; remove it yourself or choose another --out")
     parent = os.path.dirname(os.path.abspath(out))
     if not os.path.isdir(parent):
         raise OutputError(f"{out}: the folder {parent} does not exist; create it first")
     if not os.access(parent, os.W_OK):
         raise OutputError(f"{out}: the folder {parent} is not writable")
+
+
+def _is_result(path: str) -> bool:
+    """Whether ``path`` is a folder holding a rankfold result (complete or not)."""
+    import json
+
+    meta = os.path.join(path, "zarr.json")
+    if not os.path.isdir(path) or not os.path.isfile(meta):
+        return False
+    try:
+        with open(meta) as fh:
+            attrs = json.load(fh).get("attributes", {})
+    except (OSError, ValueError):
+        return False
+    return FORMAT_KEY in attrs or "route" in attrs
 
 
 def write_result(out: str, arrays: dict, attrs: dict, overwrite: bool) -> None:

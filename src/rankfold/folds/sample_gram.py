@@ -64,6 +64,7 @@ class SampleGram(FoldState):
 
     _fields = ("gram", "center", "scale", "seen", "sumsq", "standardize")
     feature_names: tuple[str, ...] | None = None  # for messages only; not serialized
+    source_path: str | None = None  # for messages only; not serialized
 
     def __init__(self, n_samples: int, n_features: int, standardize: bool = False):
         self.gram = np.zeros((n_samples, n_samples))
@@ -79,9 +80,9 @@ class SampleGram(FoldState):
         block, center, scale = center_features(block, self.standardize)
         if self.standardize and np.any(scale == 0):
             j = start + int(np.flatnonzero(scale == 0)[0])
-            name = self.feature_names[j] if self.feature_names else f"#{j}"
+            name = repr(self.feature_names[j]) if self.feature_names else f"number {j}"
             raise DataError(
-                f"feature {name} is constant, so it has no correlation to scale; "
+                f"{self.source_path or 'the table'}: feature {name} is constant, so it has no correlation to scale; "
                 "leave it out, or drop --standardize to analyse covariances")
         self.center[start:stop] = center
         self.scale[start:stop] = scale

@@ -52,7 +52,9 @@ def choose_route(n_samples: int, n_features: int, rank: int, memory_limit: int,
             if route is not order[0]:
                 reasons.append(f"the preferred {order[0].NAME} route did not fit the limit")
             return RouteChoice(route.NAME, tuple(reasons))
+    need = min(features.fixed_bytes(n, m, rank), samples.fixed_bytes(n, m, rank))
     raise MemoryLimitError(
         f"no exact route fits the memory limit of {format_bytes(memory_limit)}: the feature Gram "
         f"needs {format_bytes(features.fixed_bytes(n, m, rank))} and the sample Gram "
-        f"{format_bytes(samples.fixed_bytes(n, m, rank))}; raise --memory-limit")
+        f"{format_bytes(samples.fixed_bytes(n, m, rank))}; give at least "
+        f"--memory-limit {format_bytes(need / 0.8 * 1.05)}")

@@ -115,7 +115,9 @@ def check_values(block: np.ndarray, start: int, axis: str, inp: RouteInput,
     Messages give the count in the block and the first position by sample
     number and feature name, so the user can find the bad value.
     """
-    if np.isfinite(block).all():
+    # The sum is finite exactly when every value is (barring overflow, which only
+    # sends us to the precise check below); it needs no block-sized boolean mask.
+    if np.isfinite(np.sum(block)) or np.isfinite(block).all():
         return
     source = inp.source
     nan = np.isnan(block)

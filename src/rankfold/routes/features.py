@@ -28,7 +28,7 @@ def run(inp: RouteInput) -> Decomposition:
     source = inp.source
     m = source.n_features
     budget = block_budget(inp.memory_limit, fixed_bytes(source.n_samples, m, inp.rank)
-                          + source.fixed_read_bytes("samples"), source.bytes_per_unit("samples"),
+                          + source.fixed_read_bytes("samples"), source.min_block_bytes("samples"),
                           "the feature-Gram route")
     partition = source.partition("samples", budget)
     passes = []

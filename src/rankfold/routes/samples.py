@@ -32,7 +32,7 @@ def run(inp: RouteInput) -> Decomposition:
     if n < 2:
         raise DataError(f"{source.path}: {n} sample(s); a variance needs at least two")
     budget = block_budget(inp.memory_limit, fixed_bytes(n, m, inp.rank) + source.fixed_read_bytes("features"),
-                          source.bytes_per_unit("features"), "the sample-Gram route")
+                          source.min_block_bytes("features"), "the sample-Gram route")
     partition = source.partition("features", budget)
     fill = inp.missing == "fill-mean"
 
@@ -46,7 +46,7 @@ def run(inp: RouteInput) -> Decomposition:
         return block
 
     state = SampleGram(n, m, inp.standardize)
-    state.feature_names = source.feature_names
+    state.feature_names, state.source_path = source.feature_names, source.path
     state, gram_pass = run_pass("sample Gram", inp, partition, state, prepare)
     values, vectors = top_eigh(state.gram, inp.rank)
     del state.gram

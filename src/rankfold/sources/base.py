@@ -31,9 +31,9 @@ Axis = Literal["samples", "features"]
 AXES: tuple[str, str] = ("samples", "features")
 
 # Bytes held per element of one block while it is in flight: the float64 block
-# the fold works on, the float64 block the reader is filling, the one waiting
-# in the read-ahead queue, plus the raw decoded bytes (added per source).
-FLOAT_BYTES_IN_FLIGHT = 3 * 8
+# the fold works on and the one the reader is filling (see readahead.py), plus
+# the raw decoded bytes (added per source).
+FLOAT_BYTES_IN_FLIGHT = 2 * 8
 
 
 @dataclass(frozen=True)
@@ -108,6 +108,10 @@ class Source(ABC):
     def alignment(self, axis: str) -> int:
         """Preferred block-size multiple along ``axis`` (a storage chunk), 1 if none."""
         return 1
+
+    def min_block_bytes(self, axis: str) -> int:
+        """The least block memory a pass along ``axis`` can run with (one unit here)."""
+        return self.bytes_per_unit(axis)
 
     def fixed_read_bytes(self, axis: str) -> int:
         """Bytes a read needs regardless of block size (decoder buffers)."""
