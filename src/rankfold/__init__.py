@@ -6,11 +6,13 @@ decompose(source, rank, ...) -> Result
     Stream a Parquet, Zarr or .npy table into its leading principal components.
 open_result(path) -> Result
     Open a result group written by :func:`decompose`.
+plan(source, rank, ...) -> Plan
+    The route, passes, memory and time a decomposition would take, from metadata only.
 open_source(path, ...) -> Source
     Open a table without reading its data (shape, names, blocks).
 """
 
-from rankfold.api import decompose
+from rankfold.api import decompose, plan
 from rankfold.errors import (
     DataError,
     MemoryLimitError,
@@ -26,6 +28,7 @@ __version__ = "0.1.0"
 
 __all__ = [
     "decompose",
+    "plan",
     "open_result",
     "open_source",
     "Result",

@@ -1,4 +1,4 @@
-"""``decompose``: the one entry point that validates, chooses a route, runs it, stores it."""
+"""``decompose`` and ``plan``: validate once, plan, run the route, store the result."""
 
 from __future__ import annotations
 
@@ -12,13 +12,18 @@ import numpy as np
 from rankfold.errors import SourceError, UsageError
 from rankfold.memory import default_memory_limit, parse_memory, return_freed_memory_promptly
 from rankfold.result import Result, check_output_path, open_result, write_result
+from rankfold.machine import MachineSpeed, machine_speed
+from rankfold.planner import Plan, PlanRequest, make_plan
 from rankfold.routes import ROUTES
-from rankfold.routes.choose import choose_route
+from rankfold.routes.sketch import KINDS as SKETCH_KINDS
 from rankfold.routes.common import Decomposition, ProgressCallback, RouteInput
 from rankfold.sources import Source, open_source
 
 MISSING_POLICIES = ("refuse", "fill-mean")
-ROUTE_NAMES = ("auto", "memory", "features", "samples")
+ROUTE_NAMES = ("auto", "memory", "features", "samples", "sketch")
+ACCURACY = ("exact", "approximate")
+MAX_OVERSAMPLE = 1000
+MAX_POWER_ITERATIONS = 50
 FEATURE_CHUNK = 65536
 SAMPLE_CHUNK = 65536
 
@@ -27,7 +32,9 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
               samples_as: str = "rows", missing: str = "refuse", route: str = "auto", out=None,
               seed: int = 0, exclude=None, id_column: str | None = None,
               missing_code: float | None = None, array: str | None = None, overwrite: bool = False,
-              progress: ProgressCallback | None = None) -> Result:
+              progress: ProgressCallback | None = None, accuracy: str = "exact", oversample: int = 10,
+              power_iterations: int = 2, sketch: str = "subspace",
+              on_plan=None, speed: MachineSpeed | None = None) -> Result:
     """Leading principal components of a table, streamed in blocks within a memory ceiling.
 
     Parameters
@@ -48,8 +55,9 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
         How samples are stored in a 2-D array source.
     missing : {"refuse", "fill-mean"}
         Refuse missing values (default), or fill each with its column mean.
-    route : {"auto", "memory", "features", "samples"}
-        Force a route; ``auto`` chooses from the shape and the ceiling.
+    route : {"auto", "memory", "features", "samples", "sketch"}
+        Force a route; ``auto`` lets the planner (:mod:`rankfold.planner`)
+        choose the fastest that fits the ceiling and meets ``accuracy``.
     out : str, optional
         Path of the result store to write (a Zarr v3 group). Without it the
         result is returned only, with ``path`` set to None.
@@ -66,6 +74,20 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
         Replace an existing result store at ``out``.
     progress : callable, optional
         Called with a dict (pass, block, blocks, bytes, seconds) after every block.
+    accuracy : {"exact", "approximate"}
+        ``exact`` (default) keeps to the exact routes unless none fits the
+        ceiling; ``approximate`` lets the planner take the randomized route
+        when it is faster.
+    oversample : int
+        Extra sketch columns beyond ``rank`` (randomized route; default 10).
+    power_iterations : int
+        Passes of subspace iteration (randomized route; default 2).
+    sketch : {"subspace", "krylov", "one-pass"}
+        Randomized method; see :mod:`rankfold.routes.sketch`.
+    on_plan : callable, optional
+        Called with the :class:`~rankfold.planner.Plan` before any data is read.
+    speed : MachineSpeed, optional
+        Machine speeds for the time estimates; default the cached probe.
 
     Returns
     -------
@@ -82,10 +104,17 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
     Routes and their costs are described in :mod:`rankfold.routes`; the sign
     rule in :mod:`rankfold.linalg`.
     """
-    if missing not in MISSING_POLICIES:
-        raise UsageError(f"missing must be one of {', '.join(MISSING_POLICIES)}; got {missing!r}")
-    if route not in ROUTE_NAMES:
-        raise UsageError(f"route must be one of {', '.join(ROUTE_NAMES)}; got {route!r}")
+    _check_choice("accuracy", accuracy, ACCURACY)
+    _check_choice("sketch", sketch, SKETCH_KINDS)
+    _check_count("oversample", oversample, 0, MAX_OVERSAMPLE)
+    _check_count("power_iterations", power_iterations, 0, MAX_POWER_ITERATIONS)
+    if sketch == "one-pass" and route in ("auto", "sketch") and samples_as == "rows" and (
+            standardize or missing == "fill-mean"):
+        raise UsageError("sketch='one-pass' on samples stored as rows cannot standardize or fill missing "
+                         "values: both need the column moments before the single pass; use "
+                         "sketch='subspace' (one extra pass)")
+    _check_choice("missing", missing, MISSING_POLICIES)
+    _check_choice("route", route, ROUTE_NAMES)
     if isinstance(rank, bool) or not isinstance(rank, (int, np.integer)):
         raise UsageError(f"rank must be a whole number, got {rank!r}")
     if not isinstance(seed, (int, np.integer)) or isinstance(seed, bool):
@@ -101,27 +130,29 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
                                            exclude=exclude, id_column=id_column,
                                            missing_code=missing_code, array=array)
     try:
-        n, m = src.shape
-        if n == 0 or m == 0:
-            raise SourceError(f"{src.path}: the table is empty ({n} samples x {m} features); "
-                              "check the path and the column selection")
-        if not 1 <= rank <= min(n, m):
-            raise UsageError(f"rank must be between 1 and min(samples, features) = {min(n, m)} "
-                             f"for {src.path}; got {rank}")
-        reasons: tuple[str, ...] = ("forced with route=" + route,)
-        if route == "auto":
-            choice = choose_route(n, m, rank, limit, src.native_axis)
-            route, reasons = choice.route, choice.reasons
+        _check_rank(src, rank)
+        chosen = make_plan(plan_request(src, rank, limit, route=route, accuracy=accuracy, oversample=oversample,
+                                        power_iterations=power_iterations, sketch=sketch, missing=missing,
+                                        standardize=standardize), speed or machine_speed())
+        if on_plan is not None:
+            on_plan(chosen)
+        route, reasons = chosen.route, chosen.reasons
         t0 = time.perf_counter()
-        inp = RouteInput(src, int(rank), bool(standardize), missing, limit, progress)
+        inp = RouteInput(src, int(rank), bool(standardize), missing, limit, progress, int(oversample),
+                         int(power_iterations), sketch, int(seed))
         dec = ROUTES[route].run(inp)
         seconds = time.perf_counter() - t0
         params = {"rank": int(rank), "standardize": bool(standardize), "missing": missing,
                   "missing_code": missing_code, "samples_as": samples_as, "route": route,
                   "memory_limit": int(limit), "seed": int(seed),
                   "columns": list(columns) if columns else None,
-                  "exclude": list(exclude) if exclude else None, "id_column": id_column}
+                  "exclude": list(exclude) if exclude else None, "id_column": id_column,
+                  "accuracy": accuracy, "oversample": int(oversample),
+                  "power_iterations": int(power_iterations), "sketch": sketch}
         attrs = _attributes(src, dec, params, reasons, seconds)
+        attrs["plan"] = {"estimated_seconds": round(chosen.estimate.seconds, 3),
+                         "estimated_peak_memory": int(chosen.estimate.peak_memory),
+                         "passes": chosen.estimate.passes, "bytes_read": chosen.estimate.bytes_read}
         # Ids go with scores; reading an id column of a billion rows for nothing would
         # break the memory ceiling, so they are read only when scores are stored.
         sample_ids = None
@@ -135,6 +166,72 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
     finally:
         if not opened:
             src.close()
+
+
+def plan_request(src: Source, rank: int, limit: int, **options) -> PlanRequest:
+    """What the planner needs to know about ``src``, from its metadata only."""
+    axes = ("samples", "features")
+    return PlanRequest(
+        n_samples=src.n_samples, n_features=src.n_features, itemsize=src.storage_dtype.itemsize,
+        native_axis=src.native_axis, rank=int(rank), memory_limit=int(limit),
+        bytes_per_unit={a: src.bytes_per_unit(a) for a in axes},
+        min_block_bytes={a: src.min_block_bytes(a) for a in axes},
+        read_fixed_bytes={a: src.fixed_read_bytes(a) for a in axes},
+        table_bytes=src.n_samples * src.n_features * src.storage_dtype.itemsize,
+        cores=os.cpu_count() or 1, **options)
+
+
+def plan(source, rank: int, *, memory_limit=None, standardize: bool = False, columns=None,
+         samples_as: str = "rows", missing: str = "refuse", route: str = "auto", exclude=None,
+         missing_code: float | None = None, array: str | None = None, accuracy: str = "exact",
+         oversample: int = 10, power_iterations: int = 2, sketch: str = "subspace",
+         speed: MachineSpeed | None = None) -> Plan:
+    """The plan :func:`decompose` would follow, from the source's metadata only.
+
+    Parameters are those of :func:`decompose`. Returns a :class:`~rankfold.planner.Plan`
+    (route, passes, bytes read, flops, peak memory, estimated time, reasons);
+    ``Plan.lines()`` renders it as text.
+    """
+    _check_choice("accuracy", accuracy, ACCURACY)
+    _check_choice("sketch", sketch, SKETCH_KINDS)
+    _check_choice("route", route, ROUTE_NAMES)
+    _check_choice("missing", missing, MISSING_POLICIES)
+    _check_count("oversample", oversample, 0, MAX_OVERSAMPLE)
+    _check_count("power_iterations", power_iterations, 0, MAX_POWER_ITERATIONS)
+    limit = parse_memory(memory_limit) if memory_limit is not None else default_memory_limit()
+    src = source if isinstance(source, Source) else open_source(
+        os.fspath(source), samples_as=samples_as, columns=columns, exclude=exclude,
+        missing_code=missing_code, array=array)
+    try:
+        _check_rank(src, rank)
+        return make_plan(plan_request(src, rank, limit, route=route, accuracy=accuracy, oversample=oversample,
+                                      power_iterations=power_iterations, sketch=sketch, missing=missing,
+                                      standardize=standardize), speed or machine_speed())
+    finally:
+        if src is not source:
+            src.close()
+
+
+def _check_choice(name: str, value, allowed) -> None:
+    if value not in allowed:
+        raise UsageError(f"{name} must be one of {', '.join(allowed)}; got {value!r}")
+
+
+def _check_count(name: str, value, low: int, high: int) -> None:
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or not low <= value <= high:
+        raise UsageError(f"{name} must be a whole number from {low} to {high}; got {value!r}")
+
+
+def _check_rank(src: Source, rank) -> None:
+    n, m = src.shape
+    if n == 0 or m == 0:
+        raise SourceError(f"{src.path}: the table is empty ({n} samples x {m} features); "
+                          "check the path and the column selection")
+    if isinstance(rank, bool) or not isinstance(rank, (int, np.integer)):
+        raise UsageError(f"rank must be a whole number, got {rank!r}")
+    if not 1 <= rank <= min(n, m):
+        raise UsageError(f"rank must be between 1 and min(samples, features) = {min(n, m)} "
+                         f"for {src.path}; got {rank}")
 
 
 def _arrays(src: Source, dec: Decomposition, sample_ids) -> dict:
@@ -174,6 +271,7 @@ def _attributes(src: Source, dec: Decomposition, params: dict, reasons, seconds:
         "created": datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds"),
         "versions": _versions(),
         "sign_rule": "largest-magnitude loading of each component is positive",
+        **dec.extra,
     }
 
 

@@ -28,24 +28,18 @@ def _parser() -> argparse.ArgumentParser:
     d.add_argument("source", metavar="SOURCE", help="Parquet file or folder, Zarr array or group, or .npy file")
     d.add_argument("--rank", "-k", type=int, required=True, help="number of components to keep")
     d.add_argument("--out", "-o", required=True, metavar="RESULT.zarr", help="result store to write")
-    d.add_argument("--memory-limit", metavar="SIZE", help="ceiling for data and state, e.g. 512MB, 4GB "
-                   "(default: 60%% of available memory)")
-    d.add_argument("--standardize", action="store_true", help="correlation PCA (unit-variance features)")
-    d.add_argument("--columns", nargs="+", metavar="NAME", help="Parquet columns to use (names or patterns like 'temp_*')")
-    d.add_argument("--exclude", nargs="+", metavar="NAME", help="Parquet columns to leave out (names or patterns)")
+    _source_options(d)
     d.add_argument("--id-column", metavar="NAME", help="Parquet column kept as sample ids")
-    d.add_argument("--samples-as", choices=("rows", "columns"), default="rows",
-                   help="how samples are stored in a Zarr or .npy array (default: rows)")
-    d.add_argument("--missing", choices=("refuse", "fill-mean"), default="refuse",
-                   help="missing values: refuse (default) or fill with the column mean")
-    d.add_argument("--missing-code", type=float, metavar="VALUE",
-                   help="a stored value meaning missing, e.g. -1 in integer genotype stores")
-    d.add_argument("--route", choices=("auto", "memory", "features", "samples"), default="auto",
-                   help="force a route (default: chosen from the shape and the memory limit)")
-    d.add_argument("--array", metavar="NAME", help="array inside a Zarr group")
-    d.add_argument("--seed", type=int, default=0, help="seed for randomized steps (recorded)")
+    _planning_options(d)
+    d.add_argument("--seed", type=int, default=0, help="seed of the random test matrix (randomized route)")
     d.add_argument("--overwrite", action="store_true", help="replace an existing result store")
     d.add_argument("--quiet", "-q", action="store_true", help="print nothing but errors")
+
+    p = sub.add_parser("plan", help="say which route would run, its passes, memory and time, without reading data")
+    p.add_argument("source", metavar="SOURCE", help="Parquet file or folder, Zarr array or group, or .npy file")
+    p.add_argument("--rank", "-k", type=int, required=True, help="number of components to keep")
+    _source_options(p)
+    _planning_options(p)
 
     s = sub.add_parser("show", help="print a result's components, route and timings")
     s.add_argument("result", metavar="RESULT.zarr")
@@ -57,6 +51,44 @@ def _parser() -> argparse.ArgumentParser:
                    help="multiply the data size (e.g. 50 for tables larger than a laptop's memory)")
     m.add_argument("--memory-limit", metavar="SIZE", help="ceiling for data and state")
     return parser
+
+
+def _source_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--memory-limit", metavar="SIZE", help="ceiling for data and state, e.g. 512MB, 4GB "
+                   "(default: 60%% of available memory)")
+    p.add_argument("--standardize", action="store_true", help="correlation PCA (unit-variance features)")
+    p.add_argument("--columns", nargs="+", metavar="NAME", help="Parquet columns to use (names or patterns like 'temp_*')")
+    p.add_argument("--exclude", nargs="+", metavar="NAME", help="Parquet columns to leave out (names or patterns)")
+    p.add_argument("--samples-as", choices=("rows", "columns"), default="rows",
+                   help="how samples are stored in a Zarr or .npy array (default: rows)")
+    p.add_argument("--missing", choices=("refuse", "fill-mean"), default="refuse",
+                   help="missing values: refuse (default) or fill with the column mean")
+    p.add_argument("--missing-code", type=float, metavar="VALUE",
+                   help="a stored value meaning missing, e.g. -1 in integer genotype stores")
+    p.add_argument("--array", metavar="NAME", help="array inside a Zarr group")
+
+
+def _planning_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--route", choices=("auto", "memory", "features", "samples", "sketch"), default="auto",
+                   help="force a route (default: the planner picks the fastest that fits)")
+    p.add_argument("--accuracy", choices=("exact", "approximate"), default="exact",
+                   help="exact (default) keeps to exact routes unless none fits; approximate allows "
+                        "the randomized route when it is faster")
+    p.add_argument("--oversample", type=int, default=10, metavar="P",
+                   help="extra sketch columns beyond the rank (randomized route, default 10)")
+    p.add_argument("--power-iterations", type=int, default=2, metavar="Q",
+                   help="passes of subspace iteration (randomized route, default 2)")
+    p.add_argument("--sketch", choices=("subspace", "krylov", "one-pass"), default="subspace",
+                   help="randomized method: subspace iteration (default), block Krylov for slowly decaying "
+                        "spectra, or one-pass for data that can be read only once (less accurate)")
+
+
+def _common(args) -> dict:
+    """Keyword arguments shared by plan and decompose."""
+    return dict(memory_limit=args.memory_limit, standardize=args.standardize, columns=args.columns,
+                exclude=args.exclude, samples_as=args.samples_as, missing=args.missing,
+                missing_code=args.missing_code, route=args.route, array=args.array, accuracy=args.accuracy,
+                oversample=args.oversample, power_iterations=args.power_iterations, sketch=args.sketch)
 
 
 class _StderrProgress:
@@ -80,13 +112,22 @@ def _decompose(args) -> int:
     progress = None if args.quiet else _StderrProgress()
     if not args.quiet:
         print(f"rankfold: decomposing {args.source} into {args.rank} component(s)", file=sys.stderr)
-    result = decompose(
-        args.source, args.rank, memory_limit=args.memory_limit, standardize=args.standardize,
-        columns=args.columns, exclude=args.exclude, id_column=args.id_column, samples_as=args.samples_as,
-        missing=args.missing, missing_code=args.missing_code, route=args.route, array=args.array,
-        seed=args.seed, out=args.out, overwrite=args.overwrite, progress=progress)
+
+    def show_plan(plan) -> None:
+        if not args.quiet:
+            print("\n".join(plan.lines()), file=sys.stderr)
+
+    result = decompose(args.source, args.rank, id_column=args.id_column, seed=args.seed, out=args.out,
+                       overwrite=args.overwrite, progress=progress, on_plan=show_plan, **_common(args))
     if not args.quiet:
         print("\n".join(describe_result(result)))
+    return 0
+
+
+def _plan(args) -> int:
+    from rankfold.api import plan
+
+    print("\n".join(plan(args.source, args.rank, **_common(args)).lines()))
     return 0
 
 
@@ -110,7 +151,7 @@ def _demo(args) -> int:
     return 0
 
 
-COMMANDS = {"decompose": _decompose, "show": _show, "demo": _demo}
+COMMANDS = {"decompose": _decompose, "plan": _plan, "show": _show, "demo": _demo}
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -37,6 +37,16 @@ def describe_result(result: Result, top: int | None = None) -> list[str]:
         "",
         "passes over the data:",
     ]
+    bound = a.get("error_bound")
+    if bound:
+        kind = a.get("sketch", {}).get("kind", "subspace")
+        note = [f"randomized ({kind}): with probability {bound['probability']:.10f}, the covariance left "
+                f"outside the components has spectral norm at most {bound['spectral_norm']:.4g} "
+                f"({bound['relative_to_first']:.2%} of the first variance); {bound['source']}"]
+        if kind == "one-pass":
+            note.append("one-pass sketch: no power iteration, so variances and axes are less accurate than "
+                        "subspace iteration on the same data; compare on a subset before trusting small components")
+        lines[5:5] = note
     for p in a.get("passes", []):
         lines.append(f"  {p['name']:<14} {p['blocks']:>6,} block(s) of up to {p['largest_block']:,} {p['axis']}, "
                      f"{format_bytes(p['bytes_read'])} read, {p['seconds']:.2f} s")

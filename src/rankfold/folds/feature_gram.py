@@ -79,34 +79,41 @@ class FeatureGram(FoldState):
         return self.comoment / (self.count - 1)
 
 
-class ColumnMeans(FoldState):
-    """Per-column count of present values and their mean, ignoring NaN.
+class ColumnMoments(FoldState):
+    """Per-column count of present values, their mean and sum of squared deviations.
 
-    The first pass of ``missing="fill-mean"``: the fill values must be known
-    before the second pass can fold filled blocks.  Means are merged with the
-    same pairwise weighting as :class:`FeatureGram`.
+    NaN is skipped.  Used where centers (and spreads) must be known before the
+    real pass: the fill values of ``missing="fill-mean"`` on the feature route,
+    and the exact centering and scaling of the randomized route.  Means and
+    squared deviations are merged with the pairwise update of Chan, Golub and
+    LeVeque, column by column.
     """
 
-    _fields = ("count", "mean")
+    _fields = ("count", "mean", "m2")
 
     def __init__(self, n_features: int):
         self.count = np.zeros(n_features, dtype=np.int64)
         self.mean = np.zeros(n_features)
+        self.m2 = np.zeros(n_features)
 
-    def update(self, block: np.ndarray, start: int = 0) -> "ColumnMeans":
+    def update(self, block: np.ndarray, start: int = 0) -> "ColumnMoments":
         present = ~np.isnan(block)
         n_b = present.sum(axis=0)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            mean_b = np.where(n_b > 0, np.where(present, block, 0.0).sum(axis=0) / np.maximum(n_b, 1), 0.0)
-        self._combine(n_b, mean_b)
+        filled = np.where(present, block, 0.0)
+        mean_b = filled.sum(axis=0) / np.maximum(n_b, 1)
+        dev = np.where(present, block - mean_b, 0.0)
+        self._combine(n_b, mean_b, np.einsum("ij,ij->j", dev, dev))
         return self
 
-    def merge(self, other: "ColumnMeans") -> "ColumnMeans":
-        self._combine(other.count, other.mean)
+    def merge(self, other: "ColumnMoments") -> "ColumnMoments":
+        self._combine(other.count, other.mean, other.m2)
         return self
 
-    def _combine(self, n_b: np.ndarray, mean_b: np.ndarray) -> None:
-        n = self.count + n_b
+    def _combine(self, n_b: np.ndarray, mean_b: np.ndarray, m2_b: np.ndarray) -> None:
+        n_a = self.count
+        n = n_a + n_b
         weight = np.divide(n_b, n, out=np.zeros(n.shape), where=n > 0)
-        self.mean = self.mean + (mean_b - self.mean) * weight
+        delta = mean_b - self.mean
+        self.mean = self.mean + delta * weight
+        self.m2 = self.m2 + m2_b + delta * delta * (n_a * weight)  # n_a * n_b / n
         self.count = n

@@ -26,6 +26,10 @@ class RouteInput:
     missing: str
     memory_limit: int
     progress: ProgressCallback | None = None
+    oversample: int = 10
+    power_iterations: int = 2
+    sketch: str = "subspace"
+    seed: int = 0
 
 
 @dataclass
@@ -60,6 +64,7 @@ class Decomposition:
     n_samples: int
     scores: np.ndarray | None = None
     passes: list[PassRecord] = field(default_factory=list)
+    extra: dict = field(default_factory=dict)  # route-specific attributes for the store
 
     def with_sign_rule(self) -> "Decomposition":
         """Apply the documented sign rule (:mod:`rankfold.linalg`) in place."""

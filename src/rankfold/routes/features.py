@@ -11,7 +11,7 @@ from __future__ import annotations
 import numpy as np
 
 from rankfold.errors import DataError
-from rankfold.folds import ColumnMeans, FeatureGram
+from rankfold.folds import ColumnMoments, FeatureGram
 from rankfold.linalg import top_eigh
 from rankfold.memory import block_budget
 from rankfold.routes.common import Decomposition, RouteInput, check_numerical_rank, check_values, run_pass
@@ -38,7 +38,7 @@ def run(inp: RouteInput) -> Decomposition:
             check_values(block, start, "samples", inp, allow_missing=True)
             return block
 
-        means, record = run_pass("column means", inp, partition, ColumnMeans(m), check_only)
+        means, record = run_pass("column means", inp, partition, ColumnMoments(m), check_only)
         passes.append(record)
         empty = np.flatnonzero(means.count == 0)
         if empty.size:

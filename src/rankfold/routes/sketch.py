@@ -1,0 +1,211 @@
+"""Randomized route: streamed subspace iteration, block Krylov, or a one-pass sketch.
+
+The operator is the covariance: ``C = Xc^T Xc`` in feature space when samples
+are stored as rows (blocks of whole samples, centered and scaled exactly with
+the column moments of a first pass), or ``G = Xc Xc^T`` in sample space when
+samples are stored as columns (blocks of whole features, each centered on its
+own; the loadings then take one more pass).  Each application of the operator
+to a thin basis of width ``w = rank + oversample`` is one pass
+(:mod:`rankfold.folds.sketch`).
+
+Kinds (``sketch=``):
+
+subspace
+    Halko, Martinsson and Tropp (2011), Algorithm 4.4: ``Q = orth(Omega)``,
+    then ``power_iterations`` times ``Q = orth(C Q)`` (one pass each, QR
+    re-normalization in between), then a Rayleigh-Ritz pass.  Passes:
+    ``1 + power_iterations + 1`` (rows; the first reads the moments) or
+    ``power_iterations + 1 + 1`` (columns; the last recovers loadings).
+block Krylov
+    Musco and Musco (2015): the Rayleigh-Ritz step uses the whole Krylov
+    space ``[Q0, C Q0, ..., C^q Q0]`` (width ``w (q + 1)``): more accurate for
+    slowly decaying spectra at the same number of passes, more memory.
+one-pass
+    Tropp, Yurtsever, Udell and Cevher (2017), Algorithm 3: the Nystrom
+    approximation from ``C Omega`` alone, folded in a single read with the
+    pairwise update of Chan et al.  No power iteration, so accuracy depends on
+    the spectrum's decay; only covariance PCA without missing values (the
+    spreads and means would need a pass first).
+
+Every run reports the a posteriori bound of Halko et al. (2011, sec. 4.3),
+computed from ``TEST_VECTORS`` extra random vectors carried in the last pass.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from rankfold.errors import DataError
+from rankfold.folds import ColumnMoments, CovarianceProduct, FeatureProjection, GramProduct, StreamingSketch
+from rankfold.memory import block_budget
+from rankfold.randomized import (TEST_VECTORS, nystrom, orthonormalize, random_test_matrix, rayleigh_ritz,
+                                 residual_bound)
+from rankfold.routes.common import (Decomposition, RouteInput, check_numerical_rank, check_values,
+                                    run_pass)
+
+NAME = "sketch"
+KINDS = ("subspace", "krylov", "one-pass")
+
+
+def basis_width(rank: int, oversample: int, power_iterations: int, kind: str) -> int:
+    """Columns of the largest thin basis the route holds."""
+    width = rank + oversample
+    return width * (power_iterations + 1) if kind == "krylov" else width
+
+
+def passes(power_iterations: int, kind: str) -> int:
+    """Reads of the data: moments or loadings, the iterations, the final product."""
+    return 1 if kind == "one-pass" else power_iterations + 2
+
+
+def fixed_bytes(operator_size: int, n_features: int, rank: int, oversample: int = 10,
+                power_iterations: int = 2, kind: str = "subspace") -> int:
+    """Thin bases, products, test vectors and QR workspace in the operator's space."""
+    width = basis_width(rank, oversample, power_iterations, kind) + TEST_VECTORS
+    return 5 * operator_size * width * 8 + 6 * n_features * 8
+
+
+def run(inp: RouteInput) -> Decomposition:
+    source = inp.source
+    n, m = source.shape
+    if n < 2:
+        raise DataError(f"{source.path}: {n} sample(s); a variance needs at least two")
+    axis = source.native_axis  # read along the stored rows
+    size = m if axis == "samples" else n
+    budget = block_budget(inp.memory_limit,
+                          fixed_bytes(size, m, inp.rank, inp.oversample, inp.power_iterations, inp.sketch)
+                          + source.fixed_read_bytes(axis), source.min_block_bytes(axis), "the randomized route")
+    partition = source.partition(axis, budget)
+    width = inp.rank + inp.oversample
+    omega, tests = random_test_matrix(inp.seed, size, width)
+    if axis == "samples":
+        return _run_rows(inp, partition, omega, tests)
+    return _run_columns(inp, partition, omega, tests)
+
+
+def _iterate(inp: RouteInput, omega: np.ndarray, tests: np.ndarray, apply) -> tuple:
+    """Subspace or block Krylov iteration; returns (basis, product of basis, product of tests)."""
+    q = orthonormalize(omega)
+    krylov = [q]
+    for _ in range(inp.power_iterations):
+        z = apply(q, "power iteration")
+        q = orthonormalize(z, np.hstack(krylov) if inp.sketch == "krylov" else None)
+        krylov.append(q)
+    basis = np.hstack(krylov) if inp.sketch == "krylov" else q
+    both = apply(np.hstack([basis, tests]), "Rayleigh-Ritz")
+    return basis, both[:, :basis.shape[1]], both[:, basis.shape[1]:]
+
+
+def _error_attrs(bound_operator: float, n: int, top_value: float, kind: str) -> dict:
+    return {
+        "error_bound": {
+            "spectral_norm": bound_operator / (n - 1),
+            "relative_to_first": bound_operator / top_value if top_value > 0 else float("inf"),
+            "probability": 1 - 10.0 ** -TEST_VECTORS,
+            "test_vectors": TEST_VECTORS,
+            "meaning": ("upper bound on the spectral norm of the covariance not captured by the computed "
+                        "components" if kind != "one-pass" else
+                        "upper bound on the spectral norm of the error of the one-pass covariance approximation"),
+            "source": "Halko, Martinsson and Tropp (2011), section 4.3",
+        },
+        "sketch": {"kind": kind},
+    }
+
+
+def _run_rows(inp: RouteInput, partition, omega, tests) -> Decomposition:
+    source = inp.source
+    n, m = source.shape
+    passes_done = []
+    fill = inp.missing == "fill-mean"
+
+    def check(block, start):
+        check_values(block, start, "samples", inp, allow_missing=fill)
+        return block
+
+    if inp.sketch == "one-pass":
+        state, record = run_pass("one-pass sketch", inp, partition,
+                                 StreamingSketch(np.hstack([omega, tests])), check)
+        passes_done.append(record)
+        width = omega.shape[1]
+        y, y_tests = state.product[:, :width], state.product[:, width:]
+        values, vectors = nystrom(omega, y, inp.rank)
+        residual = y_tests - vectors @ (values[:, None] * (vectors.T @ tests))
+        center, scale, total = state.mean, np.ones(m), float(state.m2.sum()) / (n - 1)
+    else:
+        moments, record = run_pass("column moments", inp, partition, ColumnMoments(m), check)
+        passes_done.append(record)
+        empty = np.flatnonzero(moments.count == 0)
+        if empty.size:
+            names = ", ".join(repr(source.feature_names[j]) for j in empty[:5])
+            raise DataError(f"{source.path}: column(s) {names} hold no values at all; leave them out")
+        variance = moments.m2 / (n - 1)  # filled values sit at the mean and add nothing
+        center, scale, total = moments.mean, np.ones(m), float(variance.sum())
+        if inp.standardize:
+            scale = np.sqrt(variance)
+            constant = np.flatnonzero(scale == 0)
+            if constant.size:
+                names = ", ".join(repr(source.feature_names[j]) for j in constant[:5])
+                raise DataError(f"{source.path}: column(s) {names} are constant, so they have no correlation "
+                                "to scale; leave them out, or drop --standardize to analyse covariances")
+            total = float(m)
+
+        def apply(basis, label):
+            state, rec = run_pass(label, inp, partition, CovarianceProduct(basis, center, scale), check)
+            passes_done.append(rec)
+            return state.product
+
+        basis, product, product_tests = _iterate(inp, omega, tests, apply)
+        values, vectors = rayleigh_ritz(basis, product, inp.rank)
+        residual = product_tests - basis @ (basis.T @ product_tests)
+    values = check_numerical_rank(values, max(n, m), inp)
+    extra = _error_attrs(residual_bound(residual), n, values[0], inp.sketch)
+    return Decomposition(NAME, vectors, values / (n - 1), total, center, scale, n, passes=passes_done,
+                         extra=extra).with_sign_rule()
+
+
+def _run_columns(inp: RouteInput, partition, omega, tests) -> Decomposition:
+    source = inp.source
+    n, m = source.shape
+    passes_done = []
+    fill = inp.missing == "fill-mean"
+    seen = {}
+
+    def check(block, start):
+        check_values(block, start, "features", inp, allow_missing=fill)
+        if fill:
+            empty = np.flatnonzero(np.isnan(block).all(axis=1))
+            if empty.size:
+                raise DataError(f"{source.path}: feature {source.feature_names[start + empty[0]]!r} holds "
+                                "no values at all, so there is no mean to fill with; leave it out")
+        return block
+
+    def apply(basis, label):
+        state = GramProduct(basis, m, inp.standardize)
+        state.feature_names, state.source_path = source.feature_names, source.path
+        state, rec = run_pass(label, inp, partition, state, check)
+        passes_done.append(rec)
+        seen.update(center=state.center, scale=state.scale, total=state.sumsq / (n - 1))
+        return state.product
+
+    if inp.sketch == "one-pass":
+        both = apply(np.hstack([omega, tests]), "one-pass sketch")
+        width = omega.shape[1]
+        y, y_tests = both[:, :width], both[:, width:]
+        values, vectors = nystrom(omega, y, inp.rank)
+        residual = y_tests - vectors @ (values[:, None] * (vectors.T @ tests))
+    else:
+        basis, product, product_tests = _iterate(inp, omega, tests, apply)
+        values, vectors = rayleigh_ritz(basis, product, inp.rank)
+        residual = product_tests - basis @ (basis.T @ product_tests)
+    values = check_numerical_rank(values, max(n, m), inp)
+    sigma = np.sqrt(values)
+    projection = FeatureProjection(vectors / sigma, seen["center"], seen["scale"])
+    projection, record = run_pass("loadings", inp, partition, projection, lambda b, s: b)
+    passes_done.append(record)
+    # Loadings from Ritz vectors are orthonormal only as far as the Ritz vectors are
+    # eigenvectors; re-orthonormalize so the stored axes are exactly orthonormal.
+    loadings, _ = np.linalg.qr(projection.loadings)
+    loadings *= np.sign(np.einsum("ij,ij->j", loadings, projection.loadings))
+    extra = _error_attrs(residual_bound(residual), n, values[0], inp.sketch)
+    return Decomposition(NAME, loadings, values / (n - 1), seen["total"], seen["center"], seen["scale"], n,
+                         scores=vectors * sigma, passes=passes_done, extra=extra).with_sign_rule()
