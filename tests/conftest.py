@@ -23,15 +23,31 @@ Memory limits:
   ``route`` read ``path`` in about ``blocks`` blocks (computed from the routes' own
   ``fixed_bytes`` and the source's ``bytes_per_unit``; tests assert the block count recorded
   in the result's ``passes`` attribute, so a wrong estimate cannot pass silently).
+
+Other:
+
+* ``one_blas_thread`` fixture: run a test with one BLAS thread (small products; see its docstring).
+* ``RANKFOLD_CACHE_DIR`` is set (if unset) to a temporary folder made once per session, so the
+  machine probe (``rankfold.machine``) never writes into the home folder.
 """
 
 from __future__ import annotations
 
+import atexit
 import math
 import os
+import shutil
+import tempfile
 
 import numpy as np
 import pytest
+
+# The machine probe (rankfold.machine) caches its figures in $RANKFOLD_CACHE_DIR, by default
+# ~/.cache/rankfold: point it at one temporary folder made once per test session, so tests never
+# write into the home folder.  rankfold reads it at each call; child processes inherit it.
+_CACHE_DIR = tempfile.mkdtemp(prefix="rankfold-test-cache-")
+atexit.register(shutil.rmtree, _CACHE_DIR, ignore_errors=True)
+os.environ.setdefault("RANKFOLD_CACHE_DIR", _CACHE_DIR)
 
 TABLE_FORMATS = ("npy-rows", "npy-columns", "zarr-rows", "zarr-columns", "parquet-file", "parquet-folder")
 STREAMING_ROUTES = ("features", "samples")
@@ -294,3 +310,20 @@ def reference_pca(x: np.ndarray, rank: int, *, standardize: bool = False, fill_m
 @pytest.fixture(name="reference_pca")
 def reference_pca_fixture():
     return reference_pca
+
+
+# ---------------------------------------------------------------- BLAS threads
+
+
+@pytest.fixture
+def one_blas_thread():
+    """Run the test with one BLAS thread.
+
+    On the 2-core test machine OpenBLAS's thread hand-off costs 20-30x the arithmetic for the
+    small products of the randomized-route tests (a 600 x 150 by 150 x 15 product: 16 ms with
+    two threads, 0.5 ms with one); results are the same algorithm either way.
+    """
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=1, user_api="blas"):
+        yield

@@ -18,7 +18,7 @@ from hypothesis import strategies as st
 
 import rankfold
 from conftest import blocks_read, limit_for_blocks
-from rankfold.folds import ColumnMeans, FeatureGram, FeatureProjection, SampleGram, tree_merge
+from rankfold.folds import ColumnMoments, FeatureGram, FeatureProjection, SampleGram, tree_merge
 
 PROPERTY = settings(max_examples=30, deadline=None)
 RTOL = 1e-12
@@ -122,7 +122,7 @@ def test_feature_gram_merge_with_empty_state_either_way():
         np.testing.assert_array_equal(s.mean, full.mean)
 
 
-# ------------------------------------------------------------------ ColumnMeans with NaN
+# ------------------------------------------------------------------ ColumnMoments with NaN
 
 
 @PROPERTY
@@ -135,7 +135,7 @@ def test_column_means_with_nan_independent_of_blocks(data, x, order, seed, hole_
     x[rng.random(x.shape) < hole_rate] = np.nan
     parts = data.draw(partitions(n))
     trips = data.draw(st.lists(st.booleans(), min_size=len(parts), max_size=len(parts)))
-    states = [_roundtrip(ColumnMeans(m).update(x[a:b].copy(), a), t) for (a, b), t in zip(parts, trips)]
+    states = [_roundtrip(ColumnMoments(m).update(x[a:b].copy(), a), t) for (a, b), t in zip(parts, trips)]
     merged = _roundtrip(_combine(states, order, seed), data.draw(st.booleans()))
 
     present = ~np.isnan(x)
@@ -225,7 +225,7 @@ def test_tree_merge_needs_a_state():
 
 def test_to_bytes_is_lossless():
     x = np.random.default_rng(3).standard_normal((20, 4))
-    for state in (FeatureGram(4).update(x.copy()), ColumnMeans(4).update(x.copy()),
+    for state in (FeatureGram(4).update(x.copy()), ColumnMoments(4).update(x.copy()),
                   SampleGram(20, 4, True).update(np.ascontiguousarray(x.T), 0)):
         back = type(state).from_bytes(state.to_bytes())
         for name in state._fields:

@@ -117,8 +117,7 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
     _check_choice("route", route, ROUTE_NAMES)
     if isinstance(rank, bool) or not isinstance(rank, (int, np.integer)):
         raise UsageError(f"rank must be a whole number, got {rank!r}")
-    if not isinstance(seed, (int, np.integer)) or isinstance(seed, bool):
-        raise UsageError(f"seed must be a whole number, got {seed!r}")
+    _check_count("seed", seed, 0, 2**63 - 1)
     limit = parse_memory(memory_limit) if memory_limit is not None else default_memory_limit()
     if out is not None:
         out = os.fspath(out)
@@ -178,6 +177,7 @@ def plan_request(src: Source, rank: int, limit: int, **options) -> PlanRequest:
         min_block_bytes={a: src.min_block_bytes(a) for a in axes},
         read_fixed_bytes={a: src.fixed_read_bytes(a) for a in axes},
         table_bytes=src.n_samples * src.n_features * src.storage_dtype.itemsize,
+        alignment={a: src.alignment(a) for a in axes},
         cores=os.cpu_count() or 1, **options)
 
 

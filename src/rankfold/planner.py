@@ -48,6 +48,7 @@ class PlanRequest:
     min_block_bytes: dict
     read_fixed_bytes: dict
     table_bytes: int
+    alignment: dict = field(default_factory=lambda: {"samples": 1, "features": 1})
     cores: int = 2
     route: str = "auto"
     accuracy: str = "exact"
@@ -165,6 +166,9 @@ def _estimate(route: str, req: PlanRequest, speed: MachineSpeed) -> RouteEstimat
     unit = req.bytes_per_unit[axis]
     length = n if axis == "samples" else m
     units = max(1, min(length, (req.memory_limit - fixed) // unit)) if fits else 1
+    align = req.alignment.get(axis, 1)
+    if align > 1 and align <= units < length:
+        units -= units % align  # sources cut blocks at whole storage chunks
     peak = fixed + min(units, length) * unit if fits else need
     seconds = sum(max(read_pass, f / gemm) for f in per_pass) + final / gemm
     return RouteEstimate(route, axis, fits, len(per_pass), int(req.table_bytes * len(per_pass)),

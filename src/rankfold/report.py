@@ -41,8 +41,11 @@ def describe_result(result: Result, top: int | None = None) -> list[str]:
     if bound:
         kind = a.get("sketch", {}).get("kind", "subspace")
         note = [f"randomized ({kind}): with probability {bound['probability']:.10f}, the covariance left "
-                f"outside the components has spectral norm at most {bound['spectral_norm']:.4g} "
+                f"outside the returned components has spectral norm at most {bound['spectral_norm']:.4g} "
                 f"({bound['relative_to_first']:.2%} of the first variance); {bound['source']}"]
+        if "basis_spectral_norm" in bound:
+            note.append(f"  outside the whole sketch basis ({bound['basis_width']} columns): at most "
+                        f"{bound['basis_spectral_norm']:.4g}; components well above that are resolved")
         if kind == "one-pass":
             note.append("one-pass sketch: no power iteration, so variances and axes are less accurate than "
                         "subspace iteration on the same data; compare on a subset before trusting small components")

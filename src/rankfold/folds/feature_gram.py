@@ -97,12 +97,23 @@ class ColumnMoments(FoldState):
         self.m2 = np.zeros(n_features)
 
     def update(self, block: np.ndarray, start: int = 0) -> "ColumnMoments":
-        present = ~np.isnan(block)
-        n_b = present.sum(axis=0)
-        filled = np.where(present, block, 0.0)
-        mean_b = filled.sum(axis=0) / np.maximum(n_b, 1)
-        dev = np.where(present, block - mean_b, 0.0)
-        self._combine(n_b, mean_b, np.einsum("ij,ij->j", dev, dev))
+        """Fold a ``(rows, m)`` block; the block is overwritten (centered in place).
+
+        Working in place keeps the extra memory to one boolean mask, an eighth
+        of the block, instead of block-sized float temporaries.
+        """
+        missing = np.isnan(block)
+        if missing.any():
+            block[missing] = 0.0
+            n_b = block.shape[0] - missing.sum(axis=0)
+            mean_b = block.sum(axis=0) / np.maximum(n_b, 1)
+            block -= mean_b
+            block[missing] = 0.0  # absent values contribute no deviation
+        else:
+            n_b = np.full(block.shape[1], block.shape[0], dtype=np.int64)
+            mean_b = block.mean(axis=0)
+            block -= mean_b
+        self._combine(n_b, mean_b, np.einsum("ij,ij->j", block, block))
         return self
 
     def merge(self, other: "ColumnMoments") -> "ColumnMoments":

@@ -33,11 +33,19 @@ def center_features(block: np.ndarray, standardize: bool) -> tuple[np.ndarray, n
     scale : ndarray, shape (f,)
         Standard deviation (ddof=1) of the filled feature, or ones.
     """
-    present = ~np.isnan(block)
-    count = present.sum(axis=1)
-    center = np.where(present, block, 0.0).sum(axis=1) / np.maximum(count, 1)
-    block -= center[:, None]
-    block[~present] = 0.0
+    # In place, with one boolean mask at most: a block-sized float temporary
+    # would double this pass's memory.
+    missing = np.isnan(block)
+    if missing.any():
+        block[missing] = 0.0
+        count = block.shape[1] - missing.sum(axis=1)
+        center = block.sum(axis=1) / np.maximum(count, 1)
+        block -= center[:, None]
+        block[missing] = 0.0  # a filled value equals the mean: zero once centered
+    else:
+        center = block.mean(axis=1)
+        block -= center[:, None]
+    del missing
     n = block.shape[1]
     if standardize:
         scale = np.sqrt(np.einsum("ij,ij->i", block, block) / max(n - 1, 1))

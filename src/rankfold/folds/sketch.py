@@ -26,6 +26,8 @@ from rankfold.errors import DataError
 from rankfold.folds.base import FoldState
 from rankfold.folds.sample_gram import center_features
 
+SLAB = 4096  # rows per thin product; large enough for GEMM efficiency
+
 
 class CovarianceProduct(FoldState):
     """``sum_i B_i^T (B_i Q)`` over blocks of whole samples, centered and scaled globally.
@@ -50,10 +52,14 @@ class CovarianceProduct(FoldState):
         self.product = np.zeros_like(basis)
 
     def update(self, block: np.ndarray, start: int = 0) -> "CovarianceProduct":
-        block -= self.center
-        block[np.isnan(block)] = 0.0  # a filled value equals the mean: zero once centered
-        block /= self.scale
-        self.product += block.T @ (block @ self.basis)
+        # Slabs of SLAB rows bound the temporaries (the thin product B Q and the
+        # missing-value mask) to a few MB whatever the block size.
+        for a in range(0, block.shape[0], SLAB):
+            slab = block[a:a + SLAB]
+            slab -= self.center
+            slab[np.isnan(slab)] = 0.0  # a filled value equals the mean: zero once centered
+            slab /= self.scale
+            self.product += slab.T @ (slab @ self.basis)
         return self
 
     def merge(self, other: "CovarianceProduct") -> "CovarianceProduct":
@@ -146,7 +152,11 @@ class StreamingSketch(FoldState):
             return self
         mean_b = block.mean(axis=0)
         block -= mean_b
-        self._combine(rows, mean_b, np.einsum("ij,ij->j", block, block), block.T @ (block @ self.test))
+        product = np.zeros_like(self.product)
+        for a in range(0, rows, SLAB):  # bounded temporaries, as in CovarianceProduct
+            slab = block[a:a + SLAB]
+            product += slab.T @ (slab @ self.test)
+        self._combine(rows, mean_b, np.einsum("ij,ij->j", block, block), product)
         return self
 
     def merge(self, other: "StreamingSketch") -> "StreamingSketch":

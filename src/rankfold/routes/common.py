@@ -121,12 +121,11 @@ def check_values(block: np.ndarray, start: int, axis: str, inp: RouteInput,
     number and feature name, so the user can find the bad value.
     """
     # The sum is finite exactly when every value is (barring overflow, which only
-    # sends us to the precise check below); it needs no block-sized boolean mask.
-    if np.isfinite(np.sum(block)) or np.isfinite(block).all():
+    # sends us to the precise checks below); it needs no block-sized boolean mask.
+    if np.isfinite(np.sum(block)):
         return
     source = inp.source
-    nan = np.isnan(block)
-    inf = ~nan & ~np.isfinite(block)
+    inf = np.isinf(block)
 
     def where(mask: np.ndarray) -> str:
         r, c = np.unravel_index(int(np.argmax(mask)), mask.shape)
@@ -138,7 +137,11 @@ def check_values(block: np.ndarray, start: int, axis: str, inp: RouteInput,
         raise DataError(
             f"{source.path}: {int(inf.sum()):,} infinite value(s) in {span}; first at {where(inf)}. "
             "Infinities have no mean or variance: replace or remove them before decomposing.")
-    if nan.any() and not allow_missing:
+    del inf
+    if allow_missing:
+        return
+    nan = np.isnan(block)
+    if nan.any():
         raise DataError(
             f"{source.path}: {int(nan.sum()):,} missing value(s) in {span} (the first block holding any; "
             f"later blocks were not counted); first at {where(nan)}. Fill them with the column mean "

@@ -90,26 +90,37 @@ def _iterate(inp: RouteInput, omega: np.ndarray, tests: np.ndarray, apply) -> tu
     for _ in range(inp.power_iterations):
         z = apply(q, "power iteration")
         q = orthonormalize(z, np.hstack(krylov) if inp.sketch == "krylov" else None)
+        if q.shape[1] == 0:
+            break  # the Krylov space spans everything reachable: more passes add nothing
         krylov.append(q)
     basis = np.hstack(krylov) if inp.sketch == "krylov" else q
     both = apply(np.hstack([basis, tests]), "Rayleigh-Ritz")
     return basis, both[:, :basis.shape[1]], both[:, basis.shape[1]:]
 
 
-def _error_attrs(bound_operator: float, n: int, top_value: float, kind: str) -> dict:
-    return {
-        "error_bound": {
-            "spectral_norm": bound_operator / (n - 1),
-            "relative_to_first": bound_operator / top_value if top_value > 0 else float("inf"),
-            "probability": 1 - 10.0 ** -TEST_VECTORS,
-            "test_vectors": TEST_VECTORS,
-            "meaning": ("upper bound on the spectral norm of the covariance not captured by the computed "
-                        "components" if kind != "one-pass" else
-                        "upper bound on the spectral norm of the error of the one-pass covariance approximation"),
-            "source": "Halko, Martinsson and Tropp (2011), section 4.3",
-        },
-        "sketch": {"kind": kind},
+def _error_attrs(components: np.ndarray, basis: np.ndarray | None, n: int, top_value: float,
+                 kind: str, width: int) -> dict:
+    """The a posteriori bounds, in variance units (operator norm / (n - 1)).
+
+    ``components`` and ``basis`` hold ``(I - P) C w_i`` for the test vectors
+    ``w_i``, with ``P`` the projector on the returned components or on the
+    whole sketch basis.
+    """
+    bound = residual_bound(components)
+    attrs = {
+        "spectral_norm": bound / (n - 1),
+        "relative_to_first": bound / top_value if top_value > 0 else float("inf"),
+        "probability": 1 - 10.0 ** -TEST_VECTORS,
+        "test_vectors": TEST_VECTORS,
+        "meaning": ("upper bound on the spectral norm of the covariance left outside the returned "
+                    "components (at least the first variance not returned)" if kind != "one-pass" else
+                    "upper bound on the spectral norm of the error of the one-pass covariance approximation"),
+        "source": "Halko, Martinsson and Tropp (2011), section 4.3",
     }
+    if basis is not None:
+        attrs["basis_spectral_norm"] = residual_bound(basis) / (n - 1)
+        attrs["basis_width"] = int(width)
+    return {"error_bound": attrs, "sketch": {"kind": kind}}
 
 
 def _run_rows(inp: RouteInput, partition, omega, tests) -> Decomposition:
@@ -130,6 +141,7 @@ def _run_rows(inp: RouteInput, partition, omega, tests) -> Decomposition:
         y, y_tests = state.product[:, :width], state.product[:, width:]
         values, vectors = nystrom(omega, y, inp.rank)
         residual = y_tests - vectors @ (values[:, None] * (vectors.T @ tests))
+        basis_residual, basis = None, omega
         center, scale, total = state.mean, np.ones(m), float(state.m2.sum()) / (n - 1)
     else:
         moments, record = run_pass("column moments", inp, partition, ColumnMoments(m), check)
@@ -156,9 +168,10 @@ def _run_rows(inp: RouteInput, partition, omega, tests) -> Decomposition:
 
         basis, product, product_tests = _iterate(inp, omega, tests, apply)
         values, vectors = rayleigh_ritz(basis, product, inp.rank)
-        residual = product_tests - basis @ (basis.T @ product_tests)
+        residual = product_tests - vectors @ (vectors.T @ product_tests)
+        basis_residual = product_tests - basis @ (basis.T @ product_tests)
     values = check_numerical_rank(values, max(n, m), inp)
-    extra = _error_attrs(residual_bound(residual), n, values[0], inp.sketch)
+    extra = _error_attrs(residual, basis_residual, n, values[0], inp.sketch, basis.shape[1])
     return Decomposition(NAME, vectors, values / (n - 1), total, center, scale, n, passes=passes_done,
                          extra=extra).with_sign_rule()
 
@@ -193,10 +206,12 @@ def _run_columns(inp: RouteInput, partition, omega, tests) -> Decomposition:
         y, y_tests = both[:, :width], both[:, width:]
         values, vectors = nystrom(omega, y, inp.rank)
         residual = y_tests - vectors @ (values[:, None] * (vectors.T @ tests))
+        basis_residual, basis = None, omega
     else:
         basis, product, product_tests = _iterate(inp, omega, tests, apply)
         values, vectors = rayleigh_ritz(basis, product, inp.rank)
-        residual = product_tests - basis @ (basis.T @ product_tests)
+        residual = product_tests - vectors @ (vectors.T @ product_tests)
+        basis_residual = product_tests - basis @ (basis.T @ product_tests)
     values = check_numerical_rank(values, max(n, m), inp)
     sigma = np.sqrt(values)
     projection = FeatureProjection(vectors / sigma, seen["center"], seen["scale"])
@@ -206,6 +221,6 @@ def _run_columns(inp: RouteInput, partition, omega, tests) -> Decomposition:
     # eigenvectors; re-orthonormalize so the stored axes are exactly orthonormal.
     loadings, _ = np.linalg.qr(projection.loadings)
     loadings *= np.sign(np.einsum("ij,ij->j", loadings, projection.loadings))
-    extra = _error_attrs(residual_bound(residual), n, values[0], inp.sketch)
+    extra = _error_attrs(residual, basis_residual, n, values[0], inp.sketch, basis.shape[1])
     return Decomposition(NAME, loadings, values / (n - 1), seen["total"], seen["center"], seen["scale"], n,
                          scores=vectors * sigma, passes=passes_done, extra=extra).with_sign_rule()

@@ -11,7 +11,7 @@ from __future__ import annotations
 import numpy as np
 
 from rankfold.errors import SourceError
-from rankfold.sources.base import is_real_dtype
+from rankfold.sources.base import FLOAT_BYTES_IN_FLIGHT, is_real_dtype
 from rankfold.sources.matrix import StoredMatrixSource
 
 
@@ -40,6 +40,10 @@ class NpySource(StoredMatrixSource):
         super().__init__(path, "npy", shape, dtype, samples_as, missing_code)
         n = self.n_features
         self.feature_names = tuple(feature_names) if feature_names else _default_names(n)
+
+    def bytes_per_unit(self, axis: str) -> int:
+        # The stored bytes of the block are mapped only while it is copied.
+        return self.other_length(axis) * (FLOAT_BYTES_IN_FLIGHT + self.storage_dtype.itemsize)
 
     def _row_step(self) -> int:
         # About 8 MB of stored rows per step when slicing columns.

@@ -20,7 +20,7 @@ from concurrent.futures import ThreadPoolExecutor
 import numpy as np
 
 from rankfold.errors import SourceError
-from rankfold.sources.base import is_real_dtype
+from rankfold.sources.base import FLOAT_BYTES_IN_FLIGHT, is_real_dtype
 from rankfold.sources.matrix import StoredMatrixSource
 from rankfold.sources.npy import _default_names
 
@@ -106,6 +106,10 @@ class ZarrSource(StoredMatrixSource):
     def alignment(self, axis: str) -> int:
         return self._chunk_rows if axis == self.native_axis else 1
 
+    def bytes_per_unit(self, axis: str) -> int:
+        # Raw chunks are decoded a few at a time (fixed_read_bytes), not per block.
+        return self.other_length(axis) * FLOAT_BYTES_IN_FLIGHT
+
     def _row_step(self) -> int:
         return self._chunk_rows
 
@@ -114,8 +118,18 @@ class ZarrSource(StoredMatrixSource):
         chunk = int(np.prod(self._arr.chunks)) * self.storage_dtype.itemsize
         return 2 * READ_THREADS * chunk
 
+    def _get(self, start: int, stop: int, cols=slice(None)) -> np.ndarray:
+        """``arr[start:stop, cols]``, with a decoding failure named by chunk."""
+        try:
+            return np.asarray(self._arr[start:stop, cols])
+        except Exception as exc:  # codecs raise many types for corrupt bytes
+            first, last = start // self._chunk_rows, (stop - 1) // self._chunk_rows
+            which = f"chunk row {first}" if first == last else f"chunk rows {first}-{last}"
+            raise SourceError(f"{self.path}: cannot decode {which} (stored rows {start:,}-{stop - 1:,}): "
+                              f"{type(exc).__name__}: {exc}; the store may be corrupt or truncated") from None
+
     def _rows(self, start: int, stop: int, cols: slice) -> np.ndarray:
-        return np.asarray(self._arr[start:stop, cols])
+        return self._get(start, stop, cols)
 
     def _fill_rows(self, start: int, stop: int, out: np.ndarray) -> None:
         """Chunk-aligned pieces decoded on ``READ_THREADS`` threads, converted into ``out``."""
@@ -125,7 +139,7 @@ class ZarrSource(StoredMatrixSource):
 
         def fill(piece):
             a, b = piece
-            np.copyto(out[a - start:b - start], self._arr[a:b])
+            np.copyto(out[a - start:b - start], self._get(a, b))
 
         if len(pieces) == 1:
             fill(pieces[0])
