@@ -48,7 +48,6 @@ def npy_request(n: int, m: int, limit: int, *, rank: int = 10, samples_as: str =
     align = {"samples": 1, "features": 1}
     if "alignment" not in options:
         # NpySource cuts blocks along the stored rows at ~8 MB steps when slicing columns
-        rows = n if native == "samples" else m
         cols = m if native == "samples" else n
         align[native] = max(1, (8 << 20) // max(1, cols * 4))
         options["alignment"] = align

@@ -55,7 +55,48 @@ def center_features(block: np.ndarray, standardize: bool) -> tuple[np.ndarray, n
     return block, center, scale
 
 
-class SampleGram(FoldState):
+class FeatureBlockState(FoldState):
+    """Shared bookkeeping of states folded over blocks of whole features.
+
+    Each block is centered (and scaled) on its own; the state records every
+    feature's center and scale and the total sum of squares, and refuses a
+    constant feature in correlation mode.
+    """
+
+    feature_names: tuple[str, ...] | None = None  # for messages only; not serialized
+    source_path: str | None = None  # for messages only; not serialized
+
+    def _init_features(self, n_features: int, standardize: bool) -> None:
+        self.center = np.zeros(n_features)
+        self.scale = np.ones(n_features)
+        self.seen = np.zeros(n_features, dtype=bool)
+        self.sumsq = 0.0
+        self.standardize = bool(standardize)
+
+    def _center_block(self, block: np.ndarray, start: int) -> np.ndarray:
+        """Center (and scale) a ``(features, n_samples)`` block in place and record it."""
+        stop = start + block.shape[0]
+        block, center, scale = center_features(block, self.standardize)
+        if self.standardize and np.any(scale == 0):
+            j = start + int(np.flatnonzero(scale == 0)[0])
+            name = repr(self.feature_names[j]) if self.feature_names else f"number {j}"
+            raise DataError(
+                f"{self.source_path or 'the table'}: feature {name} is constant, so it has no correlation "
+                "to scale; leave it out, or drop --standardize to analyse covariances")
+        self.center[start:stop] = center
+        self.scale[start:stop] = scale
+        self.seen[start:stop] = True
+        self.sumsq += float(np.einsum("ij,ij->", block, block))
+        return block
+
+    def _merge_features(self, other: "FeatureBlockState") -> None:
+        self.center = np.where(other.seen, other.center, self.center)
+        self.scale = np.where(other.seen, other.scale, self.scale)
+        self.seen = self.seen | other.seen
+        self.sumsq += other.sumsq
+
+
+class SampleGram(FeatureBlockState):
     """Running ``Xc Xc^T`` over feature blocks, with each feature's center and scale.
 
     Parameters
@@ -71,41 +112,21 @@ class SampleGram(FoldState):
     """
 
     _fields = ("gram", "center", "scale", "seen", "sumsq", "standardize")
-    feature_names: tuple[str, ...] | None = None  # for messages only; not serialized
-    source_path: str | None = None  # for messages only; not serialized
 
     def __init__(self, n_samples: int, n_features: int, standardize: bool = False):
         self.gram = np.zeros((n_samples, n_samples))
-        self.center = np.zeros(n_features)
-        self.scale = np.ones(n_features)
-        self.seen = np.zeros(n_features, dtype=bool)
-        self.sumsq = 0.0
-        self.standardize = bool(standardize)
+        self._init_features(n_features, standardize)
 
     def update(self, block: np.ndarray, start: int = 0) -> "SampleGram":
         """Fold a ``(features, n_samples)`` float64 block starting at feature ``start``."""
-        stop = start + block.shape[0]
-        block, center, scale = center_features(block, self.standardize)
-        if self.standardize and np.any(scale == 0):
-            j = start + int(np.flatnonzero(scale == 0)[0])
-            name = repr(self.feature_names[j]) if self.feature_names else f"number {j}"
-            raise DataError(
-                f"{self.source_path or 'the table'}: feature {name} is constant, so it has no correlation to scale; "
-                "leave it out, or drop --standardize to analyse covariances")
-        self.center[start:stop] = center
-        self.scale[start:stop] = scale
-        self.seen[start:stop] = True
-        self.sumsq += float(np.einsum("ij,ij->", block, block))
+        block = self._center_block(block, start)
         self.gram += block.T @ block
         return self
 
     def merge(self, other: "SampleGram") -> "SampleGram":
         """Combine with a state over a disjoint set of features."""
         self.gram += other.gram
-        self.center = np.where(other.seen, other.center, self.center)
-        self.scale = np.where(other.seen, other.scale, self.scale)
-        self.seen = self.seen | other.seen
-        self.sumsq += other.sumsq
+        self._merge_features(other)
         return self
 
 

@@ -22,9 +22,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from rankfold.errors import DataError
 from rankfold.folds.base import FoldState
-from rankfold.folds.sample_gram import center_features
+from rankfold.folds.sample_gram import FeatureBlockState
 
 SLAB = 4096  # rows per thin product; large enough for GEMM efficiency
 
@@ -67,7 +66,7 @@ class CovarianceProduct(FoldState):
         return self
 
 
-class GramProduct(FoldState):
+class GramProduct(FeatureBlockState):
     """``sum_b F_b^T (F_b P)`` over blocks of whole features, each centered on its own.
 
     Applies ``Xc Xc^T`` (samples x samples) to ``P`` without forming it, and
@@ -86,39 +85,20 @@ class GramProduct(FoldState):
     """
 
     _fields = ("basis", "product", "center", "scale", "seen", "sumsq", "standardize")
-    feature_names: tuple[str, ...] | None = None  # for messages only; not serialized
-    source_path: str | None = None
 
     def __init__(self, basis: np.ndarray, n_features: int, standardize: bool):
         self.basis = basis
         self.product = np.zeros_like(basis)
-        self.center = np.zeros(n_features)
-        self.scale = np.ones(n_features)
-        self.seen = np.zeros(n_features, dtype=bool)
-        self.sumsq = 0.0
-        self.standardize = bool(standardize)
+        self._init_features(n_features, standardize)
 
     def update(self, block: np.ndarray, start: int = 0) -> "GramProduct":
-        stop = start + block.shape[0]
-        block, center, scale = center_features(block, self.standardize)
-        if self.standardize and np.any(scale == 0):
-            j = start + int(np.flatnonzero(scale == 0)[0])
-            name = repr(self.feature_names[j]) if self.feature_names else f"number {j}"
-            raise DataError(f"{self.source_path or 'the table'}: feature {name} is constant, so it has no "
-                            "correlation to scale; leave it out, or drop --standardize")
-        self.center[start:stop] = center
-        self.scale[start:stop] = scale
-        self.seen[start:stop] = True
-        self.sumsq += float(np.einsum("ij,ij->", block, block))
+        block = self._center_block(block, start)
         self.product += block.T @ (block @ self.basis)  # (n, f) @ (f, w)
         return self
 
     def merge(self, other: "GramProduct") -> "GramProduct":
         self.product += other.product
-        self.center = np.where(other.seen, other.center, self.center)
-        self.scale = np.where(other.seen, other.scale, self.scale)
-        self.seen = self.seen | other.seen
-        self.sumsq += other.sumsq
+        self._merge_features(other)
         return self
 
 

@@ -146,3 +146,24 @@ def check_values(block: np.ndarray, start: int, axis: str, inp: RouteInput,
             f"{source.path}: {int(nan.sum()):,} missing value(s) in {span} (the first block holding any; "
             f"later blocks were not counted); first at {where(nan)}. Fill them with the column mean "
             "with --missing fill-mean (missing='fill-mean'), or clean the data.")
+
+
+def feature_block_check(inp: RouteInput) -> Callable[[np.ndarray, int], np.ndarray]:
+    """The ``prepare`` step of passes over blocks of whole features.
+
+    Refuses infinities (and missing values unless filled); under ``fill-mean``
+    refuses a feature with no value at all, which has no mean to fill with.
+    """
+    source = inp.source
+    fill = inp.missing == "fill-mean"
+
+    def prepare(block: np.ndarray, start: int) -> np.ndarray:
+        check_values(block, start, "features", inp, allow_missing=fill)
+        if fill:
+            empty = np.flatnonzero(np.isnan(block).all(axis=1))
+            if empty.size:
+                raise DataError(f"{source.path}: feature {source.feature_names[start + empty[0]]!r} holds "
+                                "no values at all, so there is no mean to fill with; leave it out")
+        return block
+
+    return prepare

@@ -16,7 +16,7 @@ from rankfold.errors import DataError
 from rankfold.folds import FeatureProjection, SampleGram
 from rankfold.linalg import top_eigh
 from rankfold.memory import block_budget
-from rankfold.routes.common import Decomposition, RouteInput, check_numerical_rank, check_values, run_pass
+from rankfold.routes.common import Decomposition, RouteInput, check_numerical_rank, feature_block_check, run_pass
 
 NAME = "samples"
 
@@ -34,16 +34,7 @@ def run(inp: RouteInput) -> Decomposition:
     budget = block_budget(inp.memory_limit, fixed_bytes(n, m, inp.rank) + source.fixed_read_bytes("features"),
                           source.min_block_bytes("features"), "the sample-Gram route")
     partition = source.partition("features", budget)
-    fill = inp.missing == "fill-mean"
-
-    def prepare(block, start):
-        check_values(block, start, "features", inp, allow_missing=fill)
-        if fill:
-            empty = np.flatnonzero(np.isnan(block).all(axis=1))
-            if empty.size:
-                raise DataError(f"{source.path}: feature {source.feature_names[start + empty[0]]!r} holds "
-                                "no values at all, so there is no mean to fill with; leave it out")
-        return block
+    prepare = feature_block_check(inp)
 
     state = SampleGram(n, m, inp.standardize)
     state.feature_names, state.source_path = source.feature_names, source.path

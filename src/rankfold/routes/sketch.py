@@ -40,7 +40,7 @@ from rankfold.folds import ColumnMoments, CovarianceProduct, FeatureProjection, 
 from rankfold.memory import block_budget
 from rankfold.randomized import (TEST_VECTORS, nystrom, orthonormalize, random_test_matrix, rayleigh_ritz,
                                  residual_bound)
-from rankfold.routes.common import (Decomposition, RouteInput, check_numerical_rank, check_values,
+from rankfold.routes.common import (Decomposition, RouteInput, check_numerical_rank, check_values, feature_block_check,
                                     run_pass)
 
 NAME = "sketch"
@@ -180,17 +180,8 @@ def _run_columns(inp: RouteInput, partition, omega, tests) -> Decomposition:
     source = inp.source
     n, m = source.shape
     passes_done = []
-    fill = inp.missing == "fill-mean"
     seen = {}
-
-    def check(block, start):
-        check_values(block, start, "features", inp, allow_missing=fill)
-        if fill:
-            empty = np.flatnonzero(np.isnan(block).all(axis=1))
-            if empty.size:
-                raise DataError(f"{source.path}: feature {source.feature_names[start + empty[0]]!r} holds "
-                                "no values at all, so there is no mean to fill with; leave it out")
-        return block
+    check = feature_block_check(inp)
 
     def apply(basis, label):
         state = GramProduct(basis, m, inp.standardize)
