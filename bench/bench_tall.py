@@ -417,7 +417,11 @@ def child_main(args) -> None:
     child_imports(args.child)
     probe = cpu_probe()
     if args.child == "gemm":
+        busy0, own0, t0 = cpu_jiffies()[0], own_cpu_seconds(), time.perf_counter()
         out = run_gemm(meta, args)
+        wall = time.perf_counter() - t0
+        others = max(0.0, (cpu_jiffies()[0] - busy0) / os.sysconf("SC_CLK_TCK") - (own_cpu_seconds() - own0))
+        out["others_cpu_share"] = others / (wall * (os.cpu_count() or 1))
         print(MARK + json.dumps(out), flush=True)
         return
     base_peak, base_now, base_hwm, r0 = maxrss(), proc_status("VmRSS"), proc_status("VmHWM"), rchar()
@@ -430,6 +434,8 @@ def child_main(args) -> None:
     own = own_cpu_seconds() - own0
     others = max(0.0, (busy1 - busy0) / os.sysconf("SC_CLK_TCK") - own)
     out.update(own_cpu=own, others_cpu_share=others / (out["wall"] * (os.cpu_count() or 1)))
+    if "rankfold" in sys.modules:
+        out["rankfold_file"] = sys.modules["rankfold"].__file__
     out.update(peak_rss=maxrss(), hwm=proc_status("VmHWM"), base_rss=base_now, base_peak_rss=base_peak,
                base_hwm=base_hwm, file_bytes_read=rchar() - r0, cpu_gflops=probe)
     print(MARK + json.dumps(out), flush=True)
@@ -494,8 +500,32 @@ def summarize(name: str, runs: list[dict], meta: dict, store_bytes: int, max_oth
     }
 
 
+def make_snapshot() -> tuple[str, str]:
+    """Extract src/ of the current commit under bench/.cache/ (git archive: read-only for git).
+
+    Children then import rankfold from there (PYTHONPATH comes before the editable install's
+    path), so commits or edits made while a long run is going on do not mix versions.
+    """
+    root = os.path.dirname(HERE)
+    head = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=root, capture_output=True, text=True,
+                          check=True).stdout.strip()
+    dest = os.path.join(CACHE, f"src-{head}")
+    if not os.path.exists(os.path.join(dest, "src", "rankfold", "__init__.py")):
+        tmp = dest + f".tmp{os.getpid()}"
+        os.makedirs(tmp, exist_ok=True)
+        archive = subprocess.run(["git", "archive", "--format=tar", "HEAD", "src"], cwd=root,
+                                 capture_output=True, check=True).stdout
+        subprocess.run(["tar", "-x", "-C", tmp], input=archive, check=True)
+        if os.path.exists(dest):
+            shutil.rmtree(dest)
+        os.replace(tmp, dest)
+    return head, os.path.join(dest, "src")
+
+
 def rankfold_version() -> str:
     """The commit the benchmarked rankfold comes from, and whether src/ differs from it."""
+    if os.environ.get("BENCH_SNAPSHOT"):
+        return f"snapshot of commit {os.environ['BENCH_SNAPSHOT']} (src/ extracted with git archive)"
     root = os.path.dirname(HERE)
     try:
         head = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=root, capture_output=True,
@@ -507,7 +537,7 @@ def rankfold_version() -> str:
     return f"commit {head}" + (" with uncommitted changes under src/" if dirty else ", src/ clean")
 
 
-def render(args, meta, summaries: dict, gemm: dict | None, warm) -> str:
+def render(args, meta, summaries: dict, gemm: dict | None, warm, version: str | None = None) -> str:
     n, m = args.rows, args.cols
     L = []
     L.append(f"rankfold tall benchmark  {datetime.datetime.now().isoformat(timespec='seconds')}")
@@ -515,7 +545,7 @@ def render(args, meta, summaries: dict, gemm: dict | None, warm) -> str:
     L.append(f"table: {n:,} x {m} float32 ({n * m * 4 / 1e9:.2f} GB decoded); Zarr {fmt_bytes(meta['zarr_bytes'])} "
              f"on disk (chunks {args.chunk_rows} x {m}, zstd), Parquet {fmt_bytes(meta['parquet_bytes'])} "
              f"(row groups {args.row_group_rows}, snappy); rank {args.rank}; memory_limit {args.memory_limit}")
-    L.append(f"rankfold: {rankfold_version()}")
+    L.append(f"rankfold: {version or rankfold_version()}")
     L.append(f"machine: {os.cpu_count()} cores, {platform.machine()}, Python {platform.python_version()}; "
              f"page cache warm (warm-up read {fmt_bytes(warm[0])} in {warm[1]:.1f} s); "
              f"{args.repeat} repeat(s), contenders interleaved round-robin, each run in its own process")
@@ -621,6 +651,8 @@ def render(args, meta, summaries: dict, gemm: dict | None, warm) -> str:
                      f"{flops / med / 1e9:6.1f} GFLOP/s  rel. err {gemm['errors'][k]:.0e}")
         for lib in gemm["blas"]:
             L.append(f"  BLAS: {lib}")
+        if "others_cpu_share" in gemm:
+            L.append(f"  other programs took {100 * gemm['others_cpu_share']:.0f}% of the CPUs meanwhile")
     elif gemm:
         L.append(f"GEMM microbenchmark FAILED: {gemm['error']}")
 
@@ -652,7 +684,8 @@ def rerender(args) -> None:
     store_bytes = {n: meta["parquet_bytes"] if "parquet" in n else meta["zarr_bytes"] for n in CONTENDERS}
     summaries = {n: summarize(n, runs[n] + discarded.get(n, []), meta, store_bytes[n], args.max_others)
                  for n in runs}
-    text = render(args, meta, summaries, saved.get("gemm"), saved.get("warm", (0, 0.0)))
+    text = render(args, meta, summaries, saved.get("gemm"), saved.get("warm", (0, 0.0)),
+                  saved.get("rankfold_version", "not recorded in this file"))
     print(text)
     out = os.path.splitext(args.from_json)[0] + ".rerendered.txt"
     with open(out, "w") as fh:
@@ -663,6 +696,11 @@ def rerender(args) -> None:
 def parent_main(args) -> None:
     # rankfold caches a machine probe; keep the benchmark's own, so runs do not depend on ~/.cache.
     os.environ.setdefault("RANKFOLD_CACHE_DIR", os.path.join(CACHE, "rankfold-machine"))
+    if args.snapshot:
+        head, snap = make_snapshot()
+        os.environ["BENCH_SNAPSHOT"] = head
+        os.environ["PYTHONPATH"] = snap + (os.pathsep + os.environ["PYTHONPATH"] if os.environ.get("PYTHONPATH") else "")
+        log(f"rankfold: snapshot of commit {head} in {os.path.relpath(snap, os.getcwd())}")
     version_at_start = rankfold_version()
     names = args.contenders.split(",") if args.contenders else list(DEFAULT_CONTENDERS)
     unknown = [c for c in names if c not in CONTENDERS]
@@ -685,6 +723,8 @@ def parent_main(args) -> None:
     t_start = time.perf_counter()
     gemm = None
     if not args.no_gemm:
+        if args.quiet_wait > 0:
+            wait_for_quiet(args.quiet_wait)
         log("gemm vs syrk microbenchmark ...", end=" ")
         gemm = spawn("gemm", args, data)
         log("done" if "error" not in gemm else gemm["error"])
@@ -709,7 +749,7 @@ def parent_main(args) -> None:
     log(f"all runs: {time.perf_counter() - t_start:.0f} s")
     summaries = {name: summarize(name, runs[name] + discarded.get(name, []), meta, store_bytes[name],
                                  args.max_others) for name in names}
-    text = render(args, meta, summaries, gemm, warm)
+    text = render(args, meta, summaries, gemm, warm, version_at_start)
     if discarded:
         text += ("\nruns discarded because other programs used more than "
                  f"{100 * args.max_others:.0f}% of the CPUs: "
@@ -725,7 +765,8 @@ def parent_main(args) -> None:
             fh.write(text + "\n")
         with open(base + ".json", "w") as fh:
             json.dump({"args": vars(args), "meta": meta, "runs": runs, "discarded": discarded, "gemm": gemm,
-                       "warm": warm},
+                       "warm": warm, "rankfold_version": version_at_start,
+                       "rankfold_version_at_end": rankfold_version()},
                       fh, indent=1)
         log(f"saved {os.path.relpath(base, os.getcwd())}.txt (and .json with every run)")
 
@@ -753,6 +794,9 @@ def main(argv=None) -> None:
     p.add_argument("--no-gemm", action="store_true", help="skip the GEMM vs SYRK microbenchmark")
     p.add_argument("--no-save", action="store_true", help="do not write bench/results/")
     p.add_argument("--generate-only", action="store_true", help="build the cached table and stop")
+    p.add_argument("--snapshot", action="store_true",
+                   help="benchmark src/ of the current commit, extracted under bench/.cache/, so that edits "
+                        "made during the run do not mix versions")
     p.add_argument("--from-json", help="print the table of a saved run (bench/results/*.json) again")
     p.add_argument("--child", help=argparse.SUPPRESS)
     p.add_argument("--data", help=argparse.SUPPRESS)
