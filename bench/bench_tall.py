@@ -783,7 +783,7 @@ def main(argv=None) -> None:
     p.add_argument("--chunk-rows", type=int, default=16384, help="Zarr chunk rows (default 16384)")
     p.add_argument("--row-group-rows", type=int, default=65536, help="Parquet row group rows (default 65536)")
     p.add_argument("--contenders", help=f"comma-separated subset of: {', '.join(CONTENDERS)}")
-    p.add_argument("--pause", type=float, default=1.0, help="seconds idle before each run (default 1)")
+    p.add_argument("--pause", type=float, default=0.5, help="seconds idle before each run (default 0.5)")
     p.add_argument("--quiet-wait", type=float, default=60.0,
                    help="before each run, wait up to this many seconds for other programs to leave the "
                         "CPUs nearly idle (default 60; 0 to skip)")
