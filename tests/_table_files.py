@@ -67,3 +67,23 @@ def result_left_behind(out) -> list[str]:
     found += [os.path.join(parent, f) for f in os.listdir(parent)
               if f.startswith(f".{name}.partial-") or f.startswith(f".{name}.replaced-")]
     return found
+
+
+def check_refusal(rc: int, stdout: str, err: str, code: int, out, needles=(),
+                  prefix: str = "rankfold: error:") -> str:
+    """A refused run: exit ``code``, a one-line error naming ``needles`` (strings or compiled
+    patterns), no traceback or internal error, and no result store (nor a partial one) at ``out``.
+    ``prefix`` starts the message ("error:" also admits argparse's usage errors).
+    Returns the message from ``prefix`` on."""
+    assert rc == code, f"exit {rc}, expected {code}; stderr:\n{err}"
+    assert "Traceback" not in err and "Traceback" not in stdout
+    assert "internal error" not in err, err
+    assert prefix in err, err
+    message = err[err.index(prefix):]
+    for needle in needles:
+        if hasattr(needle, "search"):
+            assert needle.search(message), f"{needle.pattern!r} not in message:\n{message}"
+        else:
+            assert needle in message, f"{needle!r} not in message:\n{message}"
+    assert result_left_behind(out) == [], f"left behind: {result_left_behind(out)}"
+    return message

@@ -17,7 +17,7 @@ import pyarrow.parquet as pq
 import pytest
 import zarr
 
-from _table_files import (result_left_behind, write_npy, write_parquet, write_parquet_matrix,
+from _table_files import (check_refusal, result_left_behind, write_npy, write_parquet, write_parquet_matrix,
                           write_zarr)
 from rankfold.cli import main
 from rankfold.result import open_result
@@ -35,15 +35,7 @@ def run(capsys, *argv):
 def refused(capsys, out, code, *argv, needles=()):
     """Run ``decompose ... --out out``; check the code, the message, and that nothing is left."""
     rc, stdout, err = run(capsys, *argv)
-    assert rc == code, f"exit {rc}, expected {code}; stderr:\n{err}"
-    assert "Traceback" not in err and "Traceback" not in stdout
-    assert "rankfold: error:" in err, err
-    assert "internal error" not in err, err
-    message = err[err.index("rankfold: error:"):]
-    for needle in needles:
-        assert needle in message, f"{needle!r} not in message:\n{message}"
-    assert result_left_behind(out) == [], f"left behind: {result_left_behind(out)}"
-    return message
+    return check_refusal(rc, stdout, err, code, out, needles)
 
 
 @pytest.fixture

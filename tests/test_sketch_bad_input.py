@@ -12,7 +12,7 @@ import re
 import numpy as np
 import pytest
 
-from _table_files import result_left_behind, write_npy, write_parquet_matrix
+from _table_files import check_refusal, write_npy, write_parquet_matrix
 from rankfold.cli import main
 from rankfold.memory import parse_memory
 from rankfold.result import open_result
@@ -29,18 +29,7 @@ def run(capsys, *argv):
 def refused(capsys, out, code, *argv, needles=()):
     """``decompose ... --out out`` must exit with ``code``, say why, and leave nothing behind."""
     rc, stdout, err = run(capsys, "decompose", *argv, "--out", out)
-    assert rc == code, f"exit {rc}, expected {code}; stderr:\n{err}"
-    assert "Traceback" not in err and "Traceback" not in stdout
-    assert "internal error" not in err, err
-    assert "error:" in err, err
-    message = err[err.index("error:"):]
-    for needle in needles:
-        if isinstance(needle, re.Pattern):
-            assert needle.search(message), f"{needle.pattern!r} not in message:\n{message}"
-        else:
-            assert needle in message, f"{needle!r} not in message:\n{message}"
-    assert result_left_behind(out) == [], f"left behind: {result_left_behind(out)}"
-    return message
+    return check_refusal(rc, stdout, err, code, out, needles, prefix="error:")
 
 
 @pytest.fixture
