@@ -32,12 +32,19 @@ def _parser() -> argparse.ArgumentParser:
     d.add_argument("--id-column", metavar="NAME", help="Parquet column kept as sample ids")
     _planning_options(d)
     d.add_argument("--seed", type=int, default=0, help="seed of the random test matrix (randomized route)")
+    d.add_argument("--no-scores", dest="scores", action="store_false",
+                   help="skip the per-sample outputs (scores, residuals, flags); saves a pass on some routes")
+    d.add_argument("--scores-dtype", choices=("float32", "float64"), default="float32",
+                   help="dtype of the stored scores (default float32)")
+    d.add_argument("--flag-threshold", type=float, default=3.5, metavar="T",
+                   help="flag samples whose residual exceeds median + T x 1.4826 x MAD (default 3.5)")
     d.add_argument("--overwrite", action="store_true", help="replace an existing result store")
     d.add_argument("--quiet", "-q", action="store_true", help="print nothing but errors")
 
     p = sub.add_parser("plan", help="say which route would run, its passes, memory and time, without reading data")
     p.add_argument("source", metavar="SOURCE", help="Parquet file or folder, Zarr array or group, or .npy file")
     p.add_argument("--rank", "-k", type=int, required=True, help="number of components to keep")
+    p.add_argument("--no-scores", dest="scores", action="store_false", help="plan without the per-sample outputs")
     _source_options(p)
     _planning_options(p)
 
@@ -118,7 +125,8 @@ def _decompose(args) -> int:
             print("\n".join(plan.lines()), file=sys.stderr)
 
     result = decompose(args.source, args.rank, id_column=args.id_column, seed=args.seed, out=args.out,
-                       overwrite=args.overwrite, progress=progress, on_plan=show_plan, **_common(args))
+                       overwrite=args.overwrite, progress=progress, on_plan=show_plan, scores=args.scores,
+                       scores_dtype=args.scores_dtype, flag_threshold=args.flag_threshold, **_common(args))
     if not args.quiet:
         print("\n".join(describe_result(result)))
     return 0
@@ -127,7 +135,7 @@ def _decompose(args) -> int:
 def _plan(args) -> int:
     from rankfold.api import plan
 
-    print("\n".join(plan(args.source, args.rank, **_common(args)).lines()))
+    print("\n".join(plan(args.source, args.rank, scores=args.scores, **_common(args)).lines()))
     return 0
 
 
