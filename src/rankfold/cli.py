@@ -48,6 +48,18 @@ def _parser() -> argparse.ArgumentParser:
     _source_options(p)
     _planning_options(p)
 
+    j = sub.add_parser("project", help="place new samples into an existing decomposition")
+    j.add_argument("result", metavar="RESULT.zarr")
+    j.add_argument("source", metavar="SOURCE", help="table holding every feature of the result, by name")
+    j.add_argument("--out", "-o", required=True, metavar="SCORES", help="Zarr group, or Parquet file with --format parquet")
+    j.add_argument("--format", choices=("zarr", "parquet"), default="zarr", help="output format (default zarr)")
+    j.add_argument("--memory-limit", metavar="SIZE", help="ceiling for blocks and buffers (default: 60%% of available)")
+    j.add_argument("--scores-dtype", choices=("float32", "float64"), default="float32")
+    j.add_argument("--id-column", metavar="NAME", help="Parquet id column (default: the one the result used)")
+    j.add_argument("--array", metavar="NAME", help="array inside a Zarr group")
+    j.add_argument("--overwrite", action="store_true", help="replace an earlier projection at --out")
+    j.add_argument("--quiet", "-q", action="store_true", help="print nothing but errors")
+
     s = sub.add_parser("show", help="print a result's components, route and timings")
     s.add_argument("result", metavar="RESULT.zarr")
     s.add_argument("--top", type=int, default=None, help="show only the first N components")
@@ -139,6 +151,24 @@ def _plan(args) -> int:
     return 0
 
 
+def _project(args) -> int:
+    import warnings
+
+    from rankfold.projection import project
+    from rankfold.report import describe_projection
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        done = project(args.result, args.source, out=args.out, format=args.format, memory_limit=args.memory_limit,
+                       scores_dtype=args.scores_dtype, id_column=args.id_column, array=args.array,
+                       overwrite=args.overwrite)
+    for w in caught:
+        print(f"rankfold: warning: {w.message}", file=sys.stderr)
+    if not args.quiet:
+        print("\n".join(describe_projection(done)))
+    return 0
+
+
 def _show(args) -> int:
     from rankfold.report import describe_result
     from rankfold.result import open_result
@@ -159,7 +189,7 @@ def _demo(args) -> int:
     return 0
 
 
-COMMANDS = {"decompose": _decompose, "plan": _plan, "show": _show, "demo": _demo}
+COMMANDS = {"decompose": _decompose, "plan": _plan, "project": _project, "show": _show, "demo": _demo}
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -101,6 +101,12 @@ class Result:
     def n_features(self) -> int:
         return int(self.attrs["n_features"])
 
+    def project(self, source, out=None, **options):
+        """Place the samples of ``source`` in these components; see :func:`rankfold.projection.project`."""
+        from rankfold.projection import project
+
+        return project(self, source, out=out, **options)
+
 
 def open_result(path: str) -> Result:
     """Open a result store written by :func:`rankfold.decompose`.
@@ -180,11 +186,13 @@ class ResultWriter:
     removes the partial store.
     """
 
-    def __init__(self, out: str, overwrite: bool):
+    def __init__(self, out: str, overwrite: bool, marker: tuple[str, int] = (FORMAT_KEY, FORMAT_VERSION),
+                 checked: bool = True):
         import zarr
 
-        check_output_path(out, overwrite)
-        self.out, self.overwrite = out, overwrite
+        if checked:
+            check_output_path(out, overwrite)
+        self.out, self.overwrite, self.marker, self.checked = out, overwrite, marker, checked
         parent, name = os.path.split(os.path.abspath(out))
         self.tmp = os.path.join(parent, f".{name}.partial-{os.getpid()}")
         _remove(self.tmp)
@@ -215,9 +223,11 @@ class ResultWriter:
         out = self.out
         parent, name = os.path.split(os.path.abspath(out))
         self.group.attrs.update(attrs)
-        self.group.attrs[FORMAT_KEY] = FORMAT_VERSION  # written last: marks the store complete
+        key, version = self.marker
+        self.group.attrs[key] = version  # written last: marks the store complete
         if os.path.exists(out):
-            check_output_path(out, self.overwrite)
+            if self.checked:
+                check_output_path(out, self.overwrite)
             trash = os.path.join(parent, f".{name}.replaced-{os.getpid()}")
             os.rename(out, trash)
             os.rename(self.tmp, out)
