@@ -21,7 +21,7 @@ from rankfold.errors import MemoryLimitError
 from rankfold.machine import MachineSpeed
 from rankfold.memory import format_bytes
 from rankfold.routes import features, memory, samples, sketch
-from rankfold.sample_outputs import TallProduct, buffer_bytes
+from rankfold.sample_outputs import TallProduct, buffer_bytes, scratch_chunk_bytes, writer_bytes
 
 EXACT = ("memory", "features", "samples")
 # Above this many values an SVD of the whole table costs more than it is worth
@@ -173,7 +173,7 @@ def _estimate(route: str, req: PlanRequest, speed: MachineSpeed) -> RouteEstimat
             if sketch.tall_fits_in_memory(n, width, req.memory_limit):
                 fixed += TallProduct.bytes_needed(n, width)
             else:
-                fixed += buffer_bytes(n, width)
+                fixed += writer_bytes(n, width + 1, scratch_chunk_bytes(req.memory_limit))
                 scratch = TallProduct.bytes_needed(n, width)
             final += 2.0 * n * width * k
     fixed += outputs + req.read_fixed_bytes[axis]

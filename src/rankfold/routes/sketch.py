@@ -34,13 +34,14 @@ computed from ``TEST_VECTORS`` extra random vectors carried in the last pass.
 from __future__ import annotations
 
 import numpy as np
+import scipy.linalg
 
 from rankfold.errors import DataError
 from rankfold.folds import ColumnMoments, CovarianceProduct, FeatureProjection, GramProduct, StreamingSketch
 from rankfold.memory import block_budget
 from rankfold.randomized import (TEST_VECTORS, nystrom, orthonormalize, random_test_matrix, rayleigh_ritz,
                                  residual_bound)
-from rankfold.sample_outputs import SampleParts, TallProduct, buffer_bytes
+from rankfold.sample_outputs import SampleParts, TallProduct, scratch_chunk_bytes, writer_bytes
 from rankfold.routes.common import (Decomposition, RouteInput, check_numerical_rank, check_values, feature_block_check,
                                     output_bytes, run_pass, scratch_folder)
 
@@ -79,7 +80,8 @@ def run(inp: RouteInput) -> Decomposition:
     if captures_scores(inp):
         width = basis_width(inp.rank, inp.oversample, inp.power_iterations, inp.sketch)
         tall_in_memory = tall_fits_in_memory(n, width, inp.memory_limit)
-        fixed += TallProduct.bytes_needed(n, width) if tall_in_memory else buffer_bytes(n, width)
+        fixed += (TallProduct.bytes_needed(n, width) if tall_in_memory
+                  else writer_bytes(n, width + 1, scratch_chunk_bytes(inp.memory_limit)))
     budget = block_budget(inp.memory_limit, fixed, source.min_block_bytes(axis), "the randomized route")
     partition = source.partition(axis, budget)
     width = inp.rank + inp.oversample
@@ -190,7 +192,8 @@ def _run_rows(inp: RouteInput, partition, omega, tests, tall_in_memory) -> Decom
             state = CovarianceProduct(basis, center, scale)
             if last and tall_in_memory is not None:
                 width = basis.shape[1] - tests.shape[1]
-                parts.tall = TallProduct(n, width, None if tall_in_memory else scratch_folder(inp))
+                parts.tall = TallProduct(n, width, None if tall_in_memory else scratch_folder(inp),
+                                         scratch_chunk_bytes(inp.memory_limit))
                 state = CovarianceProduct(basis, center, scale, parts.tall.capture, width)
             state, rec = run_pass(label, inp, partition, state, check)
             passes_done.append(rec)
@@ -237,14 +240,20 @@ def _run_columns(inp: RouteInput, partition, omega, tests) -> Decomposition:
         basis_residual = product_tests - basis @ (basis.T @ product_tests)
     values = check_numerical_rank(values, max(n, m), inp)
     sigma = np.sqrt(values)
-    projection = FeatureProjection(vectors / sigma, seen["center"], seen["scale"])
+    projection = FeatureProjection(vectors / sigma, seen["center"], seen["scale"], scores=inp.scores)
     projection, record = run_pass("loadings", inp, partition, projection, lambda b, s: b)
     passes_done.append(record)
     # Loadings from Ritz vectors are orthonormal only as far as the Ritz vectors are
-    # eigenvectors; re-orthonormalize so the stored axes are exactly orthonormal.
-    loadings, _ = np.linalg.qr(projection.loadings)
-    loadings *= np.sign(np.einsum("ij,ij->j", loadings, projection.loadings))
+    # eigenvectors; re-orthonormalize so the stored axes are exactly orthonormal:
+    # L = L_raw R^-1 D (D the signs).  The scores must be Xc L for these very axes,
+    # so they are Xc L_raw R^-1 D, with Xc L_raw folded in the same pass.
+    loadings, r = np.linalg.qr(projection.loadings)
+    signs = np.sign(np.einsum("ij,ij->j", loadings, projection.loadings))
+    loadings *= signs
+    parts = SampleParts()
+    if inp.scores:
+        scores = scipy.linalg.solve_triangular(r, projection.sample_product.T, trans="T", lower=False).T
+        parts = SampleParts(scores=scores * signs, sumsq=projection.sample_sumsq)
     extra = _error_attrs(residual, basis_residual, n, values[0], inp.sketch, basis.shape[1])
     return Decomposition(NAME, loadings, values / (n - 1), seen["total"], seen["center"], seen["scale"], n,
-                         parts=SampleParts(scores=vectors * sigma, sumsq=projection.sample_sumsq),
-                         passes=passes_done, extra=extra).with_sign_rule()
+                         parts=parts, passes=passes_done, extra=extra).with_sign_rule()
