@@ -100,7 +100,7 @@ def write_comparison_report(comparison: dict, out_dir, *, result_a=None, result_
     png = figures.per_component_lines(
         [(s["label"], s["angle_degrees"]) for s in settings], title="Angle to the reference, per component",
         ylabel="principal angle (degrees, log scale)", target=target,
-        target_label=f"target {target:g} degrees", floor=ANGLE_FLOOR, highlight=recommended)
+        target_label=f"target: {target:g} degrees", floor=ANGLE_FLOOR, highlight=recommended)
     files["figures/angles.png"] = png
     sections.append(Section(
         "Angle to the reference",

@@ -37,6 +37,7 @@ PALETTE = (
     "#4a4f5c",  # slate
 )
 MAX_LABEL_COLOURS = len(PALETTE)
+SERIES = tuple(c for c in PALETTE if c != ACCENT)  # lines drawn beside an accent (target) line
 DPI = 110
 
 _RC = {
@@ -281,7 +282,7 @@ def per_component_lines(series: list[tuple[str, list]], *, title: str, ylabel: s
             v = _floor_positive(values, floor)
             k = max(k, v.size)
             wide = label == highlight
-            ax.plot(np.arange(1, v.size + 1), v, color=PALETTE[i % len(PALETTE)], marker=markers[i % len(markers)],
+            ax.plot(np.arange(1, v.size + 1), v, color=SERIES[i % len(SERIES)], marker=markers[i % len(markers)],
                     linewidth=3.0 if wide else 1.5, label=f"{label} (recommended)" if wide else label,
                     zorder=3 if wide else 2)
         if target is not None:
@@ -305,7 +306,7 @@ def scree_overlay(reference: tuple[str, list], others: list[tuple[str, list]]) -
         ax.bar(x, ref_values, width=0.66, color=RULE, edgecolor=MUTED, linewidth=0.6, label=ref_label)
         for i, (label, values) in enumerate(others):
             v = np.asarray(values, dtype=np.float64)
-            ax.plot(np.arange(1, v.size + 1), v, color=PALETTE[i % len(PALETTE)], marker="o", label=label)
+            ax.plot(np.arange(1, v.size + 1), v, color=SERIES[i % len(SERIES)], marker="o", label=label)
         ax.set_ylabel("variance")
         _components_axis(ax, k)
         ax.set_title("Variances: reference (bars) and each setting (lines)")
