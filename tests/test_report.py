@@ -436,3 +436,28 @@ def test_page_opens_in_headless_chromium_with_every_figure(result, comparison, t
     broken = tmp_path / "broken-check.html"
     broken.write_text(html.replace("</body>", '<img src="data:image/png;base64,iVBORw0KGgoAAAA=">' + _CHECK))
     assert _chromium_counts(binary, broken) == (4, 3)
+
+
+# ---------------------------------------------------------------- the demo
+
+
+def test_demo_writes_a_report_per_scenario_coloured_by_the_planted_groups(tmp_path):
+    from rankfold.demo import read_panel_truth, run_demo
+
+    lines = run_demo(tmp_path, scale=0.01)
+    pages = [line.split()[1] for line in lines if line.strip().startswith("report ")]
+    assert pages == [str(tmp_path / "panel-result.report" / "index.html"),
+                     str(tmp_path / "fleet-result.report" / "index.html")]
+    assert all(os.path.isfile(p) for p in pages)
+    panel = json.loads((tmp_path / "panel-result.report" / "report.json").read_text())
+    assert (panel["scatter"] is None) == (rankfold.open_result(str(tmp_path / "panel-result.zarr")).scores is None)
+    if panel["scatter"] is not None:  # the panel's route keeps scores: colours are the founder groups
+        truth = read_panel_truth(tmp_path / "panel.zarr")
+        groups = set(panel["scatter"]["labels"])
+        assert {f"founder {c}" for c in "ABCDE"[: truth.n_founders]} <= groups
+        assert groups <= {f"founder {c}" for c in "ABCDE"} | {"cross of two founders"}
+    fleet = json.loads((tmp_path / "fleet-result.report" / "report.json").read_text())
+    assert (fleet["scatter"] is None) == (rankfold.open_result(str(tmp_path / "fleet-result.zarr")).scores is None)
+    if fleet["scatter"] is not None:
+        assert set(fleet["scatter"]["labels"]) <= {"steady machine", "faulty machine, before its fault",
+                                                   "after fault onset"}
