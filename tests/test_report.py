@@ -464,3 +464,15 @@ def test_demo_writes_a_report_per_scenario_coloured_by_the_planted_groups(tmp_pa
     if fleet["scatter"] is not None:
         assert set(fleet["scatter"]["labels"]) <= {"steady machine", "faulty machine, before its fault",
                                                    "after fault onset"}
+
+
+def test_comparison_of_two_stored_results(comparison, result, tmp_path):
+    two = dict(comparison, kind="results", title="Two stored results", subset=None, full_table_estimate=None,
+               settings=comparison["settings"][2:], recommended=None)
+    two["settings"][0]["meets_target"] = True
+    write_comparison_report(two, tmp_path / "cmp", result_a=result, result_b=result)
+    html = (tmp_path / "cmp" / "index.html").read_text()
+    assert "result B" in html and "subset" not in html.split("</header>")[0].split("<dl")[1]
+    assert "No setting kept every component within 1 degrees" in html and 'class="chosen"' not in html
+    assert "The full table" not in html
+    assert json.loads((tmp_path / "cmp" / "comparison.json").read_text())["comparison"]["kind"] == "results"
