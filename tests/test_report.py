@@ -476,3 +476,13 @@ def test_comparison_of_two_stored_results(comparison, result, tmp_path):
     assert "No setting kept every component within 1 degrees" in html and 'class="chosen"' not in html
     assert "The full table" not in html
     assert json.loads((tmp_path / "cmp" / "comparison.json").read_text())["comparison"]["kind"] == "results"
+
+
+def test_label_column_across_a_folder_of_parquet_files(write_parquet_folder, tmp_path):
+    x = _table()
+    groups = np.array(["g0", "g1", "g2", "g3"])[(np.arange(N) // 7) % 4]
+    folder = write_parquet_folder(x, files=3, row_group_size=30, ids=groups, id_column="grp")
+    r = rankfold.decompose(folder, 3, route="memory", exclude=["grp"], out=str(tmp_path / "d.zarr"))
+    write_result_report(r, tmp_path / "rep", label_column="grp", max_points=120, seed=9)
+    scatter = json.loads((tmp_path / "rep" / "report.json").read_text())["scatter"]
+    assert scatter["labels"] == groups[np.asarray(scatter["rows"])].tolist()
