@@ -227,7 +227,7 @@ def residual_histogram(edges, counts, *, threshold: float | None, flagged: int |
     counts : array_like, shape (b,)
         Samples per bin (drawn on a log count axis, so a few outliers stay visible).
     threshold : float, optional
-        Residual above which a sample is flagged.
+        Residual above which a sample is flagged (the stored ``residual_flag["cutoff"]``).
     flagged : int, optional
         Number of flagged samples (said in the legend).
     """
@@ -242,7 +242,7 @@ def residual_histogram(edges, counts, *, threshold: float | None, flagged: int |
             ax.set_yscale("log")
             ax.set_ylim(0.7, counts.max() * 1.6)
         if threshold is not None and np.isfinite(threshold):
-            text = "flag threshold" if flagged is None else f"flag threshold: {flagged:,} flagged"
+            text = "flag cutoff" if flagged is None else f"flag cutoff: {flagged:,} flagged"
             ax.axvline(threshold, color=ACCENT, linewidth=2, linestyle=(0, (4, 2)), label=text)
         ax.set_xlabel("residual (squared distance to the kept components)")
         ax.set_ylabel("samples (log scale)")

@@ -224,22 +224,28 @@ def _residual_section(result, attrs, files, numbers) -> Section:
                                       "(they are stored with the scores by routes that compute them)."])
     edges, counts, log_x, n_finite = histogram(residual)
     flag = attrs.get("residual_flag") or {}
-    threshold = flag.get("threshold")
+    # "cutoff" is the residual above which a sample is flagged; "threshold" is the rule's z multiplier
+    cutoff = flag.get("cutoff")
+    cutoff = float(cutoff) if cutoff is not None and np.isfinite(float(cutoff)) else None
     flagged = flag.get("flagged")
     if flagged is None and _get(result, "flagged") is not None:
         flags = result.flagged
         flagged = sum(int(np.count_nonzero(np.asarray(flags[s:s + BLOCK_ROWS])))
                       for s in range(0, int(flags.shape[0]), BLOCK_ROWS))
-    png = figures.residual_histogram(edges, counts, threshold=threshold, flagged=flagged, log_x=log_x)
+    png = figures.residual_histogram(edges, counts, threshold=cutoff, flagged=flagged, log_x=log_x)
     files["figures/residual.png"] = png
     numbers["residual"] = {"edges": _floats(edges), "counts": [int(c) for c in counts], "log_x": log_x,
-                           "n_finite": n_finite, "threshold": threshold, "flagged": flagged,
-                           "rule": flag.get("rule"), "median": flag.get("median"), "mad": flag.get("mad")}
+                           "n_finite": n_finite, "cutoff": cutoff, "flagged": flagged,
+                           "threshold": flag.get("threshold"), "rule": flag.get("rule"),
+                           "median": flag.get("median"), "mad": flag.get("mad")}
     paragraphs = ["Squared distance of each sample to its reconstruction from the kept components; samples far "
                   "out to the right are poorly described by them."]
-    if threshold is not None:
-        paragraphs.append(f"{flagged if flagged is not None else 'Some'} sample(s) lie above the flag threshold "
-                          f"{float(threshold):.4g}" + (f" ({flag['rule']})." if flag.get("rule") else "."))
+    if cutoff is not None:
+        paragraphs.append(f"{flagged if flagged is not None else 'Some'} sample(s) lie above the flag cutoff "
+                          f"{cutoff:.4g}" + (f" (rule: {flag['rule']})." if flag.get("rule") else "."))
+    elif flag:
+        paragraphs.append("No sample is flagged: the residuals are too uniform for the robust rule "
+                          "(their median absolute deviation is zero), so it draws no cutoff.")
     return Section(title, paragraphs, figure=(png, "Histogram of residuals, log scale", "figures/residual.png"))
 
 
