@@ -73,17 +73,16 @@ def test_report_folder_has_page_figures_and_numbers(result, tmp_path):
     folder = tmp_path / "rep"
     assert index == str(folder / "index.html")
     assert sorted(os.listdir(folder)) == ["figures", "index.html", "report.json"]
-    assert sorted(os.listdir(folder / "figures")) == ["loadings.png", "scores.png", "scree.png"]
+    assert sorted(os.listdir(folder / "figures")) == ["loadings.png", "residual.png", "scores.png", "scree.png"]
     html = (folder / "index.html").read_text()
     assert "<script" not in html and "http://" not in html and "https://" not in html  # no network
     # every <img> is a data: URI; all of them match the pattern above
-    assert html.count("<img ") == len(_images(html)) == 3
+    assert html.count("<img ") == len(_images(html)) == 4
     for png, name in _images(html):
         assert png == (folder / name).read_bytes()
         pixels = _decode_png(png)
         assert pixels[..., :3].std() > 0.05  # something is drawn, not a blank canvas
-    # the residual figure is left out with a sentence saying why (this store holds no residuals)
-    assert "No residual distribution" in html
+    assert "No residual distribution" not in html and "No scatter" not in html
     assert not list(tmp_path.glob(".rep.partial-*"))
 
 
@@ -163,34 +162,39 @@ def test_scatter_samples_a_real_zarr_store(result, tmp_path):
 
 def test_result_without_scores_leaves_the_scatter_out_with_a_reason(source, tmp_path):
     path, _x = source
-    r = rankfold.decompose(path, RANK, route="features", exclude=["site", "code"], out=str(tmp_path / "f.zarr"))
-    assert r.scores is None
-    write_result_report(r, tmp_path / "rep")
+    r = rankfold.decompose(path, RANK, route="features", exclude=["site", "code"], scores=False,
+                           out=str(tmp_path / "f.zarr"))
+    assert r.scores is None and r.residual is None
+    write_result_report(rankfold.open_result(r.path), tmp_path / "rep")
     html = (tmp_path / "rep" / "index.html").read_text()
-    assert "No scatter: this result holds no scores" in html
+    assert "No scatter: this result holds no scores" in html and "No residual distribution" in html
     assert sorted(os.listdir(tmp_path / "rep" / "figures")) == ["loadings.png", "scree.png"]
-    assert json.loads((tmp_path / "rep" / "report.json").read_text())["scatter"] is None
+    numbers = json.loads((tmp_path / "rep" / "report.json").read_text())
+    assert numbers["scatter"] is None and numbers["residual"] is None
 
 
-@dataclasses.dataclass(frozen=True)
-class _WithResiduals:
-    """A result as the scores work will return it: the stored fields plus residuals and flags."""
+def test_residual_histogram_of_a_stored_result(result, tmp_path):
+    stored = rankfold.open_result(result.path)  # residuals read lazily from the store
+    assert stored.residual is not None and not isinstance(stored.residual, np.ndarray)
+    write_result_report(stored, tmp_path / "rep")
+    numbers = json.loads((tmp_path / "rep" / "report.json").read_text())["residual"]
+    residual = np.asarray(result.residual[:])
+    # reference: numpy.histogram of all residuals over the same edges
+    np.testing.assert_array_equal(numbers["counts"], np.histogram(residual, bins=np.asarray(numbers["edges"]))[0])
+    assert sum(numbers["counts"]) == N == numbers["n_finite"]
+    flag = result.attrs["residual_flag"]
+    assert numbers["flagged"] == flag["flagged"] == int(np.count_nonzero(result.flagged[:]))
+    assert numbers["cutoff"] == pytest.approx(flag["cutoff"]) or not np.isfinite(flag["cutoff"])
+    _decode_png((tmp_path / "rep" / "figures" / "residual.png").read_bytes())
 
-    base: object
-    residual: np.ndarray
-    flagged: np.ndarray
-    attrs: dict
 
-    def __getattr__(self, name):
-        return getattr(self.base, name)
-
-
-def test_residual_histogram_counts_every_sample_and_draws_the_threshold(result, source, tmp_path):
+def test_residual_histogram_with_outliers_draws_the_cutoff(result, source, tmp_path):
     _path, x = source
     # residual computed here with numpy: squared distance of each centered sample to its projection
     centered = x - x.mean(axis=0)
     v = result.loadings
     residual = ((centered - centered @ v @ v.T) ** 2).sum(axis=1)
+    np.testing.assert_allclose(residual, result.residual[:], rtol=1e-8, atol=1e-10)
     residual[:3] *= 400.0  # three clear outliers
     # robust flag, common practice: median + 3 * 1.4826 * MAD (here on the residuals themselves; the
     # store's rule works on their cube roots, and the report only draws the stored cutoff)
@@ -200,7 +204,8 @@ def test_residual_histogram_counts_every_sample_and_draws_the_threshold(result, 
     flagged = residual > cutoff
     attrs = dict(result.attrs, residual_flag={"median": median, "mad": mad, "threshold": 3.0, "cutoff": cutoff,
                                               "flagged": int(flagged.sum()), "rule": "median + 3 x 1.4826 x MAD"})
-    write_result_report(_WithResiduals(result, residual, flagged, attrs), tmp_path / "rep")
+    write_result_report(dataclasses.replace(result, residual=residual, flagged=flagged, attrs=attrs),
+                        tmp_path / "rep")
     numbers = json.loads((tmp_path / "rep" / "report.json").read_text())["residual"]
     assert sum(numbers["counts"]) == N == numbers["n_finite"]
     assert numbers["edges"][0] == pytest.approx(residual.min()) and numbers["edges"][-1] == pytest.approx(residual.max())
@@ -431,7 +436,7 @@ def test_page_opens_in_headless_chromium_with_every_figure(result, comparison, t
         pytest.skip("no Chromium on this machine")
     write_result_report(result, tmp_path / "rep", label_column="site")
     write_comparison_report(comparison, tmp_path / "cmp")
-    for folder, expected in (("rep", 3), ("cmp", 3)):
+    for folder, expected in (("rep", 4), ("cmp", 3)):
         html = (tmp_path / folder / "index.html").read_text()
         page = tmp_path / f"{folder}-check.html"
         page.write_text(html.replace("</body>", _CHECK))
@@ -439,7 +444,7 @@ def test_page_opens_in_headless_chromium_with_every_figure(result, comparison, t
     # the check can fail: a page with one corrupt image reports it as not loaded
     broken = tmp_path / "broken-check.html"
     broken.write_text(html.replace("</body>", '<img src="data:image/png;base64,iVBORw0KGgoAAAA=">' + _CHECK))
-    assert _chromium_counts(binary, broken) == (4, 3)
+    assert _chromium_counts(binary, broken) == (expected + 1, expected)
 
 
 # ---------------------------------------------------------------- the demo
