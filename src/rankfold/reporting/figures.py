@@ -171,8 +171,10 @@ def scores_scatter(x, y, labels=None, *, total: int | None = None) -> bytes:
             # largest groups first, so that a rare group (a fault, an outlier batch) is drawn on top
             for value in sorted(values, key=lambda v: -counts[v]):
                 mask = labels == value
-                ax.scatter(x[mask], y[mask], s=size, color=PALETTE[values.index(value) % len(PALETTE)],
-                           alpha=alpha, linewidths=0, label=f"{value} ({counts[value]:,})")
+                rare = counts[value] < 0.1 * p  # a small group drawn larger and opaque, or it vanishes
+                ax.scatter(x[mask], y[mask], s=size * (2.5 if rare else 1), alpha=0.95 if rare else alpha,
+                           color=PALETTE[values.index(value) % len(PALETTE)], linewidths=0,
+                           label=f"{value} ({counts[value]:,})")
             handles, names = ax.get_legend_handles_labels()
             order = sorted(range(len(names)), key=lambda i: names[i])
             ax.legend([handles[i] for i in order], [names[i] for i in order], loc="upper left",
