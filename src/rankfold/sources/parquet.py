@@ -19,7 +19,7 @@ import numpy as np
 
 from rankfold.errors import MemoryLimitError, SourceError
 from rankfold.memory import format_bytes
-from rankfold.sources.base import Partition, Source, block_buffer, select_names
+from rankfold.sources.base import Partition, Source, block_buffer, select_names, stat_entry
 
 
 def _is_numeric(pa_type) -> bool:
@@ -338,6 +338,9 @@ class ParquetSource(Source):
             files.append({"path": os.path.abspath(f), "bytes": st.st_size, "mtime_ns": st.st_mtime_ns})
         return {"kind": "parquet", "path": os.path.abspath(self.path), "files": files,
                 "shape": [self.n_samples, self.n_features], "columns": list(self.feature_names)}
+
+    def file_stats(self) -> dict[str, dict]:
+        return {os.path.abspath(f): stat_entry(f) for f in self.files}
 
     def close(self) -> None:
         self._handles.clear()
