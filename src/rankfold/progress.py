@@ -294,7 +294,7 @@ class LogLinesView(View):
     def block(self, run, p):
         now = self.clock()
         if self.last is None:
-            self.last = now
+            self.last = run.started
         if now - self.last >= self.interval and not p.done:
             self.last = now
             self._write(status_line(run, now, self.wall()))
