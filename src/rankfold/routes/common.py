@@ -130,8 +130,9 @@ def check_values(block: np.ndarray, start: int, axis: str, inp: RouteInput,
     # when every value is finite and no square overflows; anything else goes to the
     # precise checks below.
     flat = np.ravel(block)
-    if np.isfinite(np.dot(flat, flat)):
-        return
+    with np.errstate(over="ignore", invalid="ignore"):
+        if np.isfinite(np.dot(flat, flat)):
+            return
     source = inp.source
     inf = np.isinf(block)
 

@@ -74,6 +74,9 @@ class ParquetSource(Source):
         for f in self.files:
             try:
                 meta = pq.read_metadata(f)
+            except PermissionError:
+                raise SourceError(f"{f}: permission denied; every file of the table must be readable "
+                                  "by this user") from None
             except Exception as exc:
                 raise SourceError(f"{f}: not a readable Parquet file ({type(exc).__name__}: {exc})") from None
             schemas.append(meta.schema.to_arrow_schema())
@@ -85,13 +88,17 @@ class ParquetSource(Source):
         names = list(first.names)
         if len(set(names)) != len(names):
             dup = sorted({n for n in names if names.count(n) > 1})
-            raise SourceError(f"{self.files[0]}: duplicate column names {', '.join(dup)}")
+            raise SourceError(f"{self.files[0]}: duplicate column name(s) {', '.join(map(repr, dup))}; a "
+                              "column must be named once to be told apart: rename the copies when writing the file")
         if id_column is not None and id_column not in names:
             raise SourceError(f"{path}: id column {id_column!r} not found; columns: {', '.join(names[:8])}")
         candidates = [n for n in names if n != id_column]
         if exclude:
             dropped = {candidates[i] for i in select_names(candidates, list(exclude), f"{path} (--exclude)")}
             candidates = [n for n in candidates if n not in dropped]
+            if not candidates:
+                raise SourceError(f"{path}: no feature columns left after selection: --exclude "
+                                  f"{' '.join(exclude)} leaves out every column")
         picked = [candidates[i] for i in select_names(candidates, columns, path)]
         bad = [f"{n} ({first.field(n).type})" for n in picked if not _is_numeric(first.field(n).type)]
         if bad:
