@@ -249,7 +249,10 @@ def _arrays(src: Source, dec: Decomposition, sample_ids) -> dict:
     }
     schunk = (min(SAMPLE_CHUNK, src.n_samples),)
     if dec.scores is not None:
-        arrays["scores"] = (dec.scores.astype(np.float32), ("sample", "component"), schunk + (k,))
+        # float32 halves the store; scores beyond its range (about 3.4e38) would become inf, so keep float64.
+        fits = np.abs(dec.scores).max(initial=0.0) < np.finfo(np.float32).max
+        arrays["scores"] = (dec.scores.astype(np.float32 if fits else np.float64), ("sample", "component"),
+                            schunk + (k,))
     if sample_ids is not None and len(sample_ids) == src.n_samples:
         ids = np.asarray(sample_ids)
         arrays["sample_ids"] = (ids.astype(str) if ids.dtype.kind in "OUS" else ids, ("sample",), schunk)
