@@ -281,6 +281,17 @@ def test_library_refuses_a_table_changed_between_passes(tmp_path):
     assert result_left_behind(out) == []
 
 
+@pytest.mark.parametrize("route", ["memory", "features"])
+def test_table_changed_during_the_only_pass(capsys, monkeypatch, tmp_path, out, route):
+    # One-pass routes have no later pass to catch it: the check after the last pass does.
+    x = np.random.default_rng(13).standard_normal((300, 14))
+    path = write_parquet_matrix(tmp_path / "live.parquet", x, row_group_size=100)
+    _rewrite_after_first_pass(monkeypatch, lambda: write_parquet_matrix(path, x[:200], row_group_size=100))
+    when = "while pass 1 was being read" if route == "features" else "while it was being read"
+    refused(capsys, out, INPUT, "decompose", path, "--rank", 2, "--out", out, "--route", route,
+            needles=[os.path.abspath(path), "size changed from", when, "modified while being read"])
+
+
 def test_unchanged_table_passes_the_check(tmp_path):
     x = np.random.default_rng(10).standard_normal((120, 6))
     path = write_parquet_matrix(tmp_path / "still.parquet", x, row_group_size=40)

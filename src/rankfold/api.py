@@ -140,6 +140,7 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
         inp = RouteInput(src, int(rank), bool(standardize), missing, limit, progress, int(oversample),
                          int(power_iterations), sketch, int(seed))
         dec = ROUTES[route].run(inp)
+        src.check_unchanged(after_last=True)  # a table rewritten during the last pass is refused too
         seconds = time.perf_counter() - t0
         params = {"rank": int(rank), "standardize": bool(standardize), "missing": missing,
                   "missing_code": missing_code, "samples_as": samples_as, "route": route,

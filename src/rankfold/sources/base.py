@@ -155,13 +155,15 @@ class Source(ABC):
         self._opened_stats = self.file_stats()
         self._passes_checked = 0
 
-    def check_unchanged(self, pass_name: str | None = None) -> None:
+    def check_unchanged(self, pass_name: str | None = None, *, after_last: bool = False) -> None:
         """Refuse to start a pass when the files changed since the source was opened.
 
-        Called at the start of every pass (:func:`rankfold.routes.common.run_pass`).
-        A table rewritten between passes would mix two tables in one result,
-        for example a Gram matrix of the old rows with loadings of the new ones.
-        Costs one ``stat`` per file (a directory walk for Zarr stores).
+        Called at the start of every pass (:func:`rankfold.routes.common.run_pass`),
+        and with ``after_last`` once the route has read everything
+        (:func:`rankfold.decompose`), before a result is written.  A table
+        rewritten between passes would mix two tables in one result, for example
+        a Gram matrix of the old rows with loadings of the new ones.  Costs one
+        ``stat`` per file (a directory walk for Zarr stores).
 
         Raises
         ------
@@ -171,15 +173,19 @@ class Source(ABC):
         """
         if getattr(self, "_opened_stats", None) is None:
             self.record_file_stats()
-        self._passes_checked += 1
+        if not after_last:
+            self._passes_checked += 1
         count = self._passes_checked
         now = self.file_stats()
         for path, before in self._opened_stats.items():
             after = now.get(path)
             if after == before:
                 continue
-            when = (f"between pass {count - 1} and pass {count}" if count > 1
-                    else "after it was opened and before pass 1")
+            if after_last:
+                when = f"while pass {count} was being read" if count else "while it was being read"
+            else:
+                when = (f"between pass {count - 1} and pass {count}" if count > 1
+                        else "after it was opened and before pass 1")
             if pass_name:
                 when += f" ({pass_name})"
             raise SourceError(f"{path}: {_describe_change(before, after)} {when}; the table was modified "
