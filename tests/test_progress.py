@@ -298,3 +298,16 @@ def test_cli_on_a_terminal_draws_bars(tmp_path):
     for i, name in enumerate(["column moments", "power iteration", "power iteration", "Rayleigh-Ritz"], 1):
         assert re.search(rf"pass {i}/4 {name}: \d+ blocks, 3\.8 MB in", screen), screen[-2000:]  # 3.84 MB
     assert "component" in stdout
+
+
+def test_a_log_that_cannot_be_written_does_not_stop_the_run(tmp_path, table):
+    """/dev/full accepts the open and fails every write with ENOSPC (Linux), like a full disk."""
+    if not os.path.exists("/dev/full"):
+        pytest.skip("no /dev/full on this system")
+    path, x = table
+    stream = io.StringIO()
+    with RunMonitor([RunLog("/dev/full"), LogLinesView(stream, interval=0)]) as monitor:
+        result = rankfold.decompose(path, 2, route="features", progress=monitor, on_plan=monitor.on_plan)
+        monitor.finished([])
+    assert result.loadings.shape == (12, 2)
+    assert "pass 1/1 feature Gram" in stream.getvalue()  # the other views went on

@@ -319,8 +319,13 @@ class RunLog(View):
         if self.fh is None:
             return
         stamp = datetime.datetime.now(datetime.timezone.utc).strftime("%Y-%m-%d %H:%M:%SZ")
-        self.fh.write(f"{stamp} {text}".rstrip() + "\n")
-        self.fh.flush()
+        try:
+            self.fh.write(f"{stamp} {text}".rstrip() + "\n")
+            self.fh.flush()
+        except OSError:
+            # A full disk must not stop a night's run for the sake of its log: stop logging
+            # (the result write will report a full disk plainly if it is still full then).
+            self.close()
 
     def plan(self, run, lines):
         try:
@@ -348,8 +353,11 @@ class RunLog(View):
 
     def close(self):
         if self.fh is not None:
-            self.fh.close()
-            self.fh = None
+            fh, self.fh = self.fh, None
+            try:
+                fh.close()
+            except OSError:
+                pass
 
 
 # --------------------------------------------------------------------------- the monitor
