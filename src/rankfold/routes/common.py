@@ -121,7 +121,7 @@ def check_numerical_rank(values: np.ndarray, size: int, inp: RouteInput) -> np.n
 
 def check_values(block: np.ndarray, start: int, axis: str, inp: RouteInput,
                  allow_missing: bool) -> None:
-    """Refuse infinities always, and missing values unless a fill policy is set.
+    """Refuse infinities and values whose squares overflow always, missing values unless filled.
 
     Messages give the count in the block and the first position by sample
     number and feature name, so the user can find the bad value.
@@ -147,19 +147,21 @@ def check_values(block: np.ndarray, start: int, axis: str, inp: RouteInput,
             f"{source.path}: {int(inf.sum()):,} infinite value(s) in {span}; first at {where(inf)}. "
             "Infinities have no mean or variance: replace or remove them before decomposing.")
     del inf
-    nan = np.isnan(block)
-    if nan.any() and not allow_missing:
-        raise DataError(
-            f"{source.path}: {int(nan.sum()):,} missing value(s) in {span} (the first block holding any; "
-            f"later blocks were not counted); first at {where(nan)}. Fill them with the column mean "
-            "with --missing fill-mean (missing='fill-mean'), or clean the data.")
+    if not allow_missing:
+        nan = np.isnan(block)
+        if nan.any():
+            raise DataError(
+                f"{source.path}: {int(nan.sum()):,} missing value(s) in {span} (the first block holding any; "
+                f"later blocks were not counted); first at {where(nan)}. Fill them with the column mean "
+                "with --missing fill-mean (missing='fill-mean'), or clean the data.")
+        del nan
     # Finite values whose squares overflow: sums of squares and Gram products would
     # turn into inf and NaN loadings.  Below this magnitude the block's sum of
-    # squares stays within float64 whatever the values are.
+    # squares stays within float64 whatever the values are.  fmax/fmin skip NaN and
+    # need no block-sized temporary (the memory ceiling counts none).
     limit = np.sqrt(np.finfo(np.float64).max / max(1, block.size))
-    with np.errstate(invalid="ignore"):
+    if block.size and max(np.fmax.reduce(block, axis=None), -np.fmin.reduce(block, axis=None)) > limit:
         huge = np.abs(block) > limit
-    if huge.any():
         first = np.unravel_index(int(np.argmax(huge)), huge.shape)
         raise DataError(
             f"{source.path}: {int(huge.sum()):,} value(s) in {span} are too large for a sum of squares in "
