@@ -14,7 +14,9 @@ open_source(path, ...) -> Source
 
 from rankfold.api import decompose, plan
 from rankfold.errors import (
+    CheckpointError,
     DataError,
+    Interrupted,
     MemoryLimitError,
     OutputError,
     RankfoldError,
@@ -38,5 +40,7 @@ __all__ = [
     "DataError",
     "MemoryLimitError",
     "OutputError",
+    "CheckpointError",
+    "Interrupted",
     "__version__",
 ]

@@ -9,7 +9,9 @@ import time
 
 import numpy as np
 
-from rankfold.errors import SourceError, UsageError
+from rankfold import stopping
+from rankfold.checkpoint import DEFAULT_EVERY, Checkpointer
+from rankfold.errors import Interrupted, SourceError, UsageError
 from rankfold.memory import default_memory_limit, parse_memory, return_freed_memory_promptly
 from rankfold.result import Result, check_output_path, open_result, write_result
 from rankfold.machine import MachineSpeed, machine_speed
@@ -34,7 +36,8 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
               missing_code: float | None = None, array: str | None = None, overwrite: bool = False,
               progress: ProgressCallback | None = None, accuracy: str = "exact", oversample: int = 10,
               power_iterations: int = 2, sketch: str = "subspace",
-              on_plan=None, speed: MachineSpeed | None = None) -> Result:
+              on_plan=None, speed: MachineSpeed | None = None, checkpoint_every: float = DEFAULT_EVERY,
+              restart: bool = False, on_resume=None) -> Result:
     """Leading principal components of a table, streamed in blocks within a memory ceiling.
 
     Parameters
@@ -88,6 +91,17 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
         Called with the :class:`~rankfold.planner.Plan` before any data is read.
     speed : MachineSpeed, optional
         Machine speeds for the time estimates; default the cached probe.
+    checkpoint_every : float
+        Seconds between checkpoints within a pass (default 300); 0 saves after
+        every block. Checkpoints are kept only when ``out`` is given, in
+        ``.NAME.checkpoint`` beside it (:mod:`rankfold.checkpoint`), and are
+        removed once the result is complete. Calling ``decompose`` again with
+        the same arguments resumes from the last one.
+    restart : bool
+        Discard a checkpoint left by an earlier run instead of resuming it.
+    on_resume : callable, optional
+        Called with a one-line message ("resuming ...: pass 2 of 4 (feature
+        Gram), block 342 of 1,000") when a checkpoint is resumed.
 
     Returns
     -------
@@ -98,6 +112,12 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
     Raises
     ------
     UsageError, SourceError, DataError, MemoryLimitError, OutputError
+    CheckpointError
+        A checkpoint beside ``out`` belongs to another source or other
+        parameters (the message lists what changed), or is in use.
+    Interrupted
+        SIGINT or SIGTERM arrived (handlers are installed while the passes run,
+        from the main thread only); the state was saved first when ``out`` is given.
 
     Notes
     -----
@@ -118,7 +138,10 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
     if isinstance(rank, bool) or not isinstance(rank, (int, np.integer)):
         raise UsageError(f"rank must be a whole number, got {rank!r}")
     _check_count("seed", seed, 0, 2**63 - 1)
-    limit = parse_memory(memory_limit) if memory_limit is not None else default_memory_limit()
+    if isinstance(checkpoint_every, bool) or not isinstance(checkpoint_every, (int, float, np.integer, np.floating)) \
+            or not np.isfinite(checkpoint_every) or checkpoint_every < 0:
+        raise UsageError(f"checkpoint_every must be a number of seconds, 0 or more; got {checkpoint_every!r}")
+    limit = parse_memory(memory_limit) if memory_limit is not None else None
     if out is not None:
         out = os.fspath(out)
         check_output_path(out, overwrite)
@@ -128,18 +151,41 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
     src = source if opened else open_source(os.fspath(source), samples_as=samples_as, columns=columns,
                                            exclude=exclude, id_column=id_column,
                                            missing_code=missing_code, array=array)
+    ckpt = None
     try:
         _check_rank(src, rank)
-        chosen = make_plan(plan_request(src, rank, limit, route=route, accuracy=accuracy, oversample=oversample,
-                                        power_iterations=power_iterations, sketch=sketch, missing=missing,
-                                        standardize=standardize), speed or machine_speed())
+        if out is not None:
+            ckpt = Checkpointer.open(out, _identity(locals()), src.fingerprint(), float(checkpoint_every),
+                                     bool(restart))
+        resolved = ckpt.resolved if ckpt is not None else None
+        if limit is None:
+            # A resumed run keeps the default ceiling it started with: the default follows the
+            # memory available now, and another ceiling would cut other blocks.
+            limit = resolved["memory_limit"] if resolved else default_memory_limit()
+        request = dict(accuracy=accuracy, oversample=oversample, power_iterations=power_iterations,
+                       sketch=sketch, missing=missing, standardize=standardize)
+        chosen = make_plan(plan_request(src, rank, limit, route=route, **request), speed or machine_speed())
+        if resolved and chosen.route != resolved["route"]:
+            # The choice rests on measured machine speeds, which drift between runs; the
+            # checkpoint holds passes of the route first chosen, so keep it.
+            chosen = make_plan(plan_request(src, rank, limit, route=resolved["route"], **request),
+                               speed or machine_speed())
+        if ckpt is not None:
+            ckpt.settle(chosen.route, limit, chosen.estimate.passes)
         if on_plan is not None:
             on_plan(chosen)
+        if ckpt is not None and on_resume is not None and ckpt.resume_message():
+            on_resume(ckpt.resume_message())
         route, reasons = chosen.route, chosen.reasons
         t0 = time.perf_counter()
         inp = RouteInput(src, int(rank), bool(standardize), missing, limit, progress, int(oversample),
-                         int(power_iterations), sketch, int(seed))
-        dec = ROUTES[route].run(inp)
+                         int(power_iterations), sketch, int(seed), ckpt)
+        with stopping.stop_on_signals():
+            dec = ROUTES[route].run(inp)
+            if stopping.requested():  # arrived after the last pass was saved
+                raise Interrupted(f"stopped by {stopping.requested()} after the last pass; "
+                                  + ("run the same command again to finish from the checkpoint" if ckpt
+                                     else "nothing was saved"))
         seconds = time.perf_counter() - t0
         params = {"rank": int(rank), "standardize": bool(standardize), "missing": missing,
                   "missing_code": missing_code, "samples_as": samples_as, "route": route,
@@ -161,10 +207,32 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
             return Result(None, dec.loadings, dec.variance, dec.variance / dec.total_variance, dec.center,
                           dec.scale, np.asarray(src.feature_names), dec.scores, sample_ids, attrs)
         write_result(out, _arrays(src, dec, sample_ids), attrs, overwrite)
+        ckpt.remove()  # only once the result is complete under its name
         return open_result(out)
     finally:
+        if ckpt is not None:
+            ckpt.close()
         if not opened:
             src.close()
+
+
+def _identity(args: dict) -> dict:
+    """The arguments of :func:`decompose` that decide its answer, as a checkpoint records them.
+
+    The memory limit decides the block partition, the route which passes run;
+    both are recorded as asked for ("auto", None for the default), and the
+    checkpoint keeps what they resolved to (:meth:`Checkpointer.settle`).
+    """
+    def names(value):
+        return list(value) if value else None
+
+    return {"rank": int(args["rank"]), "route": args["route"], "accuracy": args["accuracy"],
+            "memory_limit": None if args["limit"] is None else int(args["limit"]),
+            "standardize": bool(args["standardize"]), "missing": args["missing"],
+            "missing_code": args["missing_code"], "columns": names(args["columns"]),
+            "exclude": names(args["exclude"]), "samples_as": args["samples_as"], "array": args["array"],
+            "id_column": args["id_column"], "seed": int(args["seed"]), "oversample": int(args["oversample"]),
+            "power_iterations": int(args["power_iterations"]), "sketch": args["sketch"]}
 
 
 def plan_request(src: Source, rank: int, limit: int, **options) -> PlanRequest:
