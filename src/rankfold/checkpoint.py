@@ -79,6 +79,7 @@ class Checkpointer:
         self.clock = clock
         self._lock_fd = lock_fd
         self._ordinal = 0
+        self.frozen_at: int | None = None  # ordinal of the first pass that cannot be resumed
         self.found = bool(manifest.get("passes"))  # an earlier run left work to reuse
 
     # -- opening ------------------------------------------------------------------------------
@@ -160,10 +161,31 @@ class Checkpointer:
 
     # -- passes ---------------------------------------------------------------------------------
 
-    def begin_pass(self, name: str, partition) -> "PassCursor":
-        """The next pass of the route: its saved entry when the checkpoint has one."""
+    def begin_pass(self, name: str, partition, resumable: bool = True) -> "PassCursor | None":
+        """The next pass of the route: its saved entry when the checkpoint has one.
+
+        Returns None for a pass whose state cannot be resumed (it sends data
+        outside itself, :attr:`rankfold.folds.base.FoldState.resumable`) and
+        for every pass after it: the checkpoint then keeps the passes before
+        it, and a resumed run reads that pass and the later ones again.
+        """
         self._ordinal += 1
         passes = self.manifest["passes"]
+        if self.frozen_at is not None:
+            return None
+        if not resumable:
+            self.frozen_at = self._ordinal
+            if len(passes) >= self._ordinal:
+                dropped = passes[self._ordinal - 1:]
+                del passes[self._ordinal - 1:]
+                self._write_manifest()
+                for entry in dropped:
+                    if entry.get("state"):
+                        try:
+                            os.remove(os.path.join(self.folder, entry["state"]))
+                        except OSError:
+                            pass
+            return None
         digest = partition_digest(partition)
         if self._ordinal <= len(passes):
             entry = passes[self._ordinal - 1]
@@ -179,6 +201,13 @@ class Checkpointer:
                      "complete": False, "state": None, "bytes_read": 0, "seconds": 0.0, "record": None}
             passes.append(entry)
         return PassCursor(self, entry)
+
+    def stopped_unsaved(self, signal_name: str, name: str) -> str:
+        """Message for a stop inside a pass that cannot be resumed part-way."""
+        kept = self.frozen_at - 1 if self.frozen_at else len(self.manifest["passes"])
+        return (f"stopped by {signal_name} in pass {self._ordinal} ({name}), which cannot be resumed "
+                f"part-way; {kept} earlier pass(es) are saved in {self.folder}. Run the same command again "
+                "to resume from there, or add --restart (restart=True) to start over")
 
     def total_passes(self) -> int:
         return max(int((self.resolved or {}).get("passes") or 0), len(self.manifest["passes"]))

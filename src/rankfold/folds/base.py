@@ -18,6 +18,10 @@ class FoldState:
     """Base class: subclasses list their array fields in ``_fields``."""
 
     _fields: tuple[str, ...] = ()
+    # Whether the fields are all there is: a state whose update also sends data elsewhere
+    # (rows to a writer, a captured product) cannot be restored part-way or skipped as
+    # done, since a restored state would not replay what it sent; checkpoints re-run its pass.
+    resumable: bool = True
 
     def to_bytes(self) -> bytes:
         """Compact serialization of the state (an uncompressed ``.npz`` payload)."""

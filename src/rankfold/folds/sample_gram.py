@@ -141,13 +141,14 @@ class FeatureProjection(FoldState):
         From the first pass, so that every block is centered identically.
     """
 
-    _fields = ("weights", "center", "scale", "loadings")
+    _fields = ("weights", "center", "scale", "loadings", "sample_sumsq")
 
     def __init__(self, weights: np.ndarray, center: np.ndarray, scale: np.ndarray):
         self.weights = weights
         self.center = center
         self.scale = scale
         self.loadings = np.zeros((center.shape[0], weights.shape[1]))
+        self.sample_sumsq = np.zeros(weights.shape[0])  # each sample's centered squared norm, for residuals
 
     def update(self, block: np.ndarray, start: int = 0) -> "FeatureProjection":
         stop = start + block.shape[0]
@@ -155,8 +156,10 @@ class FeatureProjection(FoldState):
         block[np.isnan(block)] = 0.0
         block /= self.scale[start:stop, None]
         self.loadings[start:stop] = block @ self.weights
+        self.sample_sumsq += np.einsum("ij,ij->j", block, block)
         return self
 
     def merge(self, other: "FeatureProjection") -> "FeatureProjection":
         self.loadings += other.loadings  # disjoint feature ranges: the rest are zeros
+        self.sample_sumsq += other.sample_sumsq
         return self

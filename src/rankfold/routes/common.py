@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -12,6 +13,7 @@ from rankfold import stopping
 from rankfold.checkpoint import Checkpointer
 from rankfold.errors import DataError, Interrupted
 from rankfold.linalg import sign_flips
+from rankfold.sample_outputs import SampleParts, buffer_bytes
 from rankfold.sources.base import Partition, Source
 from rankfold.sources.readahead import iter_blocks
 
@@ -32,6 +34,8 @@ class RouteInput:
     power_iterations: int = 2
     sketch: str = "subspace"
     seed: int = 0
+    scores: bool = True  # whether per-sample outputs will be written (routes keep what they need)
+    scratch: str | None = None  # folder for a tall intermediate that exceeds memory (created on demand)
     checkpoint: Checkpointer | None = None  # saves and restores pass states (rankfold.checkpoint)
 
 
@@ -54,8 +58,9 @@ class PassRecord:
 class Decomposition:
     """A route's output, before it is written to a result store.
 
-    Shapes: ``loadings`` (m, k); ``variance`` (k,); ``center``, ``scale`` (m,);
-    ``scores`` (n, k) or None when the route does not produce them for free.
+    Shapes: ``loadings`` (m, k); ``variance`` (k,); ``center``, ``scale`` (m,).
+    ``parts`` holds what the route produced towards the scores
+    (:class:`rankfold.sample_outputs.SampleParts`; empty when a scores pass is needed).
     """
 
     route: str
@@ -65,7 +70,7 @@ class Decomposition:
     center: np.ndarray
     scale: np.ndarray
     n_samples: int
-    scores: np.ndarray | None = None
+    parts: SampleParts = field(default_factory=SampleParts)
     passes: list[PassRecord] = field(default_factory=list)
     extra: dict = field(default_factory=dict)  # route-specific attributes for the store
 
@@ -73,8 +78,7 @@ class Decomposition:
         """Apply the documented sign rule (:mod:`rankfold.linalg`) in place."""
         flips = sign_flips(self.loadings)
         self.loadings *= flips
-        if self.scores is not None:
-            self.scores *= flips
+        self.parts.flip(flips)
         return self
 
 
@@ -92,7 +96,9 @@ def run_pass(name: str, inp: RouteInput, partition: Partition, state,
     """
     source = inp.source
     total = len(partition)
-    cursor = inp.checkpoint.begin_pass(name, partition) if inp.checkpoint is not None else None
+    cursor = None
+    if inp.checkpoint is not None:
+        cursor = inp.checkpoint.begin_pass(name, partition, getattr(state, "resumable", True))
     first, read, before = 0, 0, 0.0
     if cursor is not None:
         if cursor.complete:
@@ -112,16 +118,33 @@ def run_pass(name: str, inp: RouteInput, partition: Partition, state,
             inp.progress({"pass": name, "block": index + 1, "blocks": total, "bytes": read,
                           "seconds": before + time.perf_counter() - t0})
         if signal_name and index + 1 < total:
-            raise Interrupted(_stopped_message(signal_name, cursor))
+            raise Interrupted(_stopped_message(signal_name, inp, name, cursor))
     record = PassRecord(name, partition.axis, total, partition.largest, read, before + time.perf_counter() - t0)
     if cursor is not None:
         cursor.finish(state, record.as_dict())
     if stopping.requested():  # the pass is saved whole; stop before the next one starts
-        raise Interrupted(_stopped_message(stopping.requested(), cursor))
+        raise Interrupted(_stopped_message(stopping.requested(), inp, name, cursor))
     return state, record
 
 
-def _stopped_message(signal_name: str, cursor) -> str:
+def output_bytes(inp: RouteInput) -> int:
+    """Memory the per-sample stage holds beside a route's state (0 without scores)."""
+    return buffer_bytes(inp.source.n_samples, inp.rank) if inp.scores else 0
+
+
+def scratch_folder(inp: RouteInput) -> str:
+    """A fresh folder for a scratch Zarr store: under ``inp.scratch`` or the system's temporary folder."""
+    import tempfile
+
+    if inp.scratch is None:
+        return tempfile.mkdtemp(prefix="rankfold-scratch-")
+    os.makedirs(inp.scratch, exist_ok=True)
+    return tempfile.mkdtemp(prefix="tall-", dir=inp.scratch)
+
+
+def _stopped_message(signal_name: str, inp: RouteInput, name: str, cursor) -> str:
+    if cursor is None and inp.checkpoint is not None:
+        return inp.checkpoint.stopped_unsaved(signal_name, name)
     if cursor is None:
         return (f"stopped by {signal_name}; nothing was saved (checkpoints are kept only when a "
                 "result path is given); run the command again to start over")
@@ -133,7 +156,7 @@ def stop_point(inp: RouteInput) -> None:
     signal_name = stopping.requested()
     if signal_name:
         if inp.checkpoint is None:
-            raise Interrupted(_stopped_message(signal_name, None))
+            raise Interrupted(_stopped_message(signal_name, inp, "", None))
         raise Interrupted(f"stopped by {signal_name}; this route reads the table in one go, so nothing "
                           "was saved; run the same command again to start over")
 
