@@ -1,22 +1,26 @@
 """Fault tests with real processes: SIGKILL, SIGINT and SIGTERM mid-pass, and a full disk.
 
 Each test starts ``python -m rankfold decompose`` as a subprocess on Zarr
-tables in ``tmp_path``, with a small ``--memory-limit`` (tens to hundreds of
-blocks per pass) and ``--checkpoint-every 0`` (a checkpoint after every
-block).  The moment of each kill is chosen by a seeded generator as a block
-number of a given pass, and found by watching the checkpoint's manifest, so
-the kill lands inside that pass whatever the machine's speed (no blind
-sleeps).  After the kills, the same command is run again until it completes;
-its arrays must equal those of an uninterrupted run bit for bit
-(``np.array_equal``), and no checkpoint folder or partial store may remain.
+tables in ``tmp_path``, with a small ``--memory-limit`` (tens of blocks per
+pass) and ``--checkpoint-every 0`` (a checkpoint after every block).  The
+moment of each kill is drawn from a seeded generator: a block number of the
+pass, found by watching the checkpoint's manifest (no blind sleeps), or, for
+a pass that is never saved part-way (the scores pass, the randomized route's
+last pass that keeps ``Xc Q``), a fraction of that pass's measured duration
+after the pass before it was saved.  After the kills the same command is run
+again until it completes; its arrays (loadings to flags) must equal those of
+an uninterrupted run bit for bit (``np.array_equal``), and no checkpoint
+folder, partial store or scratch folder may remain.
 
-Kills exercised (SIGKILL): features route with fill-mean, 2 passes, 2 kills;
+SIGKILLs: features route with fill-mean and scores, 3 passes, 3 kills;
 sample-Gram route on samples stored as columns, 2 passes, 2 kills; randomized
 subspace iteration on rows, 3 passes, 3 kills; on columns, 3 passes, 3 kills;
-the in-memory route, 1 kill during its single load (it restarts).  11 in all.
-Then SIGINT and SIGTERM (exit 130, message saying how to resume), and a file
-system refusing writes (RLIMIT_FSIZE: EFBIG, as a full disk gives ENOSPC)
-during the result write and during a checkpoint write.
+the in-memory route, 1 kill during its single load (it restarts): 12 in all.
+Then SIGINT (in a pass saved block by block, and in the scores pass) and
+SIGTERM: exit 130, a message saying how to resume, the same result after it.
+A file system refusing writes (RLIMIT_FSIZE gives EFBIG where a full disk
+gives ENOSPC) during the result write and during a checkpoint write: exit 5,
+a clear message, no store that looks complete.
 """
 
 from __future__ import annotations
@@ -35,11 +39,13 @@ import pytest
 import rankfold
 from rankfold.checkpoint import checkpoint_folder
 
+from _ceilings import ceiling_for
 from _table_files import write_zarr
 
 pytestmark = pytest.mark.slow
 
-ARRAYS = ("loadings", "variance", "variance_fraction", "center", "scale", "scores")
+ARRAYS = ("loadings", "variance", "variance_fraction", "center", "scale", "scores", "residual",
+          "residual_fraction", "flagged")
 SEED = 20261202
 POLL = 0.002  # seconds between looks at the manifest; a block takes several times longer
 
@@ -55,35 +61,45 @@ def tables(tmp_path_factory):
             "cols": write_zarr(base / "cols.zarr", cols, (20, 300))}
 
 
-# name -> (table, CLI options, decompose keywords): the same run both ways.
+# name -> (table, decompose keywords, block size in samples or features, passes read again whole
+# on resume).  The CLI gets the same options; the memory limit comes from the block size
+# (_ceilings.ceiling_for).  Passes that send rows outside their fold state (the scores pass, the
+# randomized route's captured product) are not saved part-way, so a kill there re-reads them.
 CONFIGS = {
-    "features": ("rows", ["--route", "features", "--missing", "fill-mean", "--memory-limit", "1.2MB"],
-                 dict(route="features", missing="fill-mean", memory_limit="1.2MB")),
-    "samples": ("cols", ["--route", "samples", "--samples-as", "columns", "--memory-limit", "3.5MB"],
-                dict(route="samples", samples_as="columns", memory_limit="3.5MB")),
-    "sketch-rows": ("rows", ["--route", "sketch", "--missing", "fill-mean", "--power-iterations", "1",
-                             "--memory-limit", "1.2MB"],
-                    dict(route="sketch", missing="fill-mean", power_iterations=1, memory_limit="1.2MB")),
-    "sketch-cols": ("cols", ["--route", "sketch", "--samples-as", "columns", "--power-iterations", "1",
-                             "--memory-limit", "1.5MB"],
-                    dict(route="sketch", samples_as="columns", power_iterations=1, memory_limit="1.5MB")),
-    "memory": ("rows", ["--route", "memory", "--missing", "fill-mean", "--memory-limit", "64MB"],
-               dict(route="memory", missing="fill-mean", memory_limit="64MB")),
+    "features": ("rows", dict(route="features", missing="fill-mean"), 600, {"scores"}),
+    "samples": ("cols", dict(route="samples", samples_as="columns"), 60, set()),
+    "sketch-rows": ("rows", dict(route="sketch", missing="fill-mean", power_iterations=1), 300, {"Rayleigh-Ritz"}),
+    "sketch-cols": ("cols", dict(route="sketch", samples_as="columns", power_iterations=1), 60, set()),
+    "memory": ("rows", dict(route="memory", missing="fill-mean", memory_limit=64_000_000), 0, {"load"}),
 }
 
 
 @pytest.fixture(scope="module")
-def references(tables, tmp_path_factory):
+def options(tables):
+    """name -> (table path, decompose keywords with the memory limit)."""
+    out = {}
+    for name, (table, kw, units, _) in CONFIGS.items():
+        limit = kw.get("memory_limit") or ceiling_for(tables[table], units, **kw)
+        out[name] = (tables[table], {**kw, "memory_limit": limit})
+    return out
+
+
+@pytest.fixture(scope="module")
+def references(options, tmp_path_factory):
     """Each configuration run once in this process, uninterrupted and without checkpoints."""
     base = tmp_path_factory.mktemp("reference")
-    return {name: rankfold.decompose(tables[table], 3, out=base / f"{name}.zarr", **kw)
-            for name, (table, _, kw) in CONFIGS.items()}
+    return {name: rankfold.decompose(path, 3, out=base / f"{name}.zarr", **kw)
+            for name, (path, kw) in options.items()}
 
 
-def command(tables, name, out) -> list[str]:
-    table, options, _ = CONFIGS[name]
-    return [sys.executable, "-m", "rankfold", "decompose", tables[table], "--rank", "3", "--out", str(out),
-            "--checkpoint-every", "0", *options]
+def command(options, name, out) -> list[str]:
+    path, kw = options[name]
+    argv = [sys.executable, "-m", "rankfold", "decompose", path, "--rank", "3", "--out", str(out),
+            "--checkpoint-every", "0"]
+    for key, value in kw.items():
+        flag = "--" + key.replace("_", "-")
+        argv += [flag] if value is True else [flag, str(value)]
+    return argv
 
 
 def read_manifest(out) -> dict | None:
@@ -149,63 +165,93 @@ def assert_complete_and_equal(out, reference) -> None:
     assert [f for f in os.listdir(parent) if f.startswith(f".{base}")] == []
 
 
-def finish(tables, name, out) -> str:
-    proc = subprocess.run(command(tables, name, out), capture_output=True, text=True, timeout=300)
+def finish(options, name, out) -> str:
+    proc = subprocess.run(command(options, name, out), capture_output=True, text=True, timeout=300)
     assert proc.returncode == 0, proc.stderr
     return proc.stderr
 
 
+def after_pass(ordinal: int):
+    """Reached once pass ``ordinal`` is saved complete (0: once the run has settled its plan)."""
+    def reached(manifest):
+        if ordinal == 0:
+            return manifest.get("resolved") is not None
+        passes = manifest["passes"]
+        return len(passes) >= ordinal and passes[ordinal - 1]["complete"]
+    return reached
+
+
+def moment_in(name: str, ordinal: int, reference, rng):
+    """(condition, delay): a seeded random moment inside pass ``ordinal`` of configuration ``name``.
+
+    A pass saved block by block is caught at a random block; a pass that is
+    never saved part-way is caught a random fraction of its duration (as
+    measured in the reference run) after the pass before it was saved.
+    """
+    passes = reference.attrs["passes"]
+    p = passes[ordinal - 1]
+    if p["name"] in CONFIGS[name][3]:
+        return after_pass(ordinal - 1), float(rng.uniform(0.05, 0.6)) * p["seconds"]
+    return in_pass(ordinal, int(rng.integers(1, p["blocks"] - 1))), float(rng.uniform(0, 0.01))
+
+
 @pytest.mark.parametrize("name", ["features", "samples", "sketch-rows", "sketch-cols"])
-def test_sigkill_in_every_pass_then_resume_gives_the_same_bits(name, tables, references, tmp_path):
+def test_sigkill_in_every_pass_then_resume_gives_the_same_bits(name, options, references, tmp_path):
     reference = references[name]
     passes = reference.attrs["passes"]
     rng = np.random.default_rng([SEED, len(name)])
     out = tmp_path / "r.zarr"
     for ordinal, p in enumerate(passes, start=1):
-        block = int(rng.integers(1, p["blocks"] - 1))
-        code, err = run_until(command(tables, name, out), out, in_pass(ordinal, block),
-                              delay=float(rng.uniform(0, 0.01)))
+        reached, delay = moment_in(name, ordinal, reference, rng)
+        code, err = run_until(command(options, name, out), out, reached, delay=delay)
         assert code == -signal.SIGKILL, err
         manifest = assert_checkpoint_consistent(out)
-        assert manifest["passes"][ordinal - 1]["blocks_done"] >= block
+        assert all(e["complete"] for e in manifest["passes"][:ordinal - 1])  # earlier passes kept
         assert not os.path.exists(out)  # no result, complete-looking or not
         if ordinal > 1:
             assert "resuming from the checkpoint" in err and f"of {len(passes)}" in err
-    err = finish(tables, name, out)
-    assert f"pass {len(passes)} of {len(passes)} ({passes[-1]['name']})" in err
+    err = finish(options, name, out)
+    assert "resuming from the checkpoint" in err
     assert_complete_and_equal(out, reference)
 
 
-def test_sigkill_during_the_in_memory_load_restarts(tables, references, tmp_path):
+def test_sigkill_during_the_in_memory_load_restarts(options, references, tmp_path):
     out = tmp_path / "r.zarr"
     rng = np.random.default_rng([SEED, 1])
-    code, err = run_until(command(tables, "memory", out), out, lambda m: m.get("resolved") is not None,
-                          delay=float(rng.uniform(0, 0.05)))
+    code, err = run_until(command(options, "memory", out), out, after_pass(0),
+                          delay=float(rng.uniform(0, 0.5)) * references["memory"].attrs["passes"][0]["seconds"])
     assert code == -signal.SIGKILL, err
     assert not os.path.exists(out)
-    err = finish(tables, "memory", out)
+    err = finish(options, "memory", out)
     assert "resuming" not in err  # nothing to resume: one read, started over
     assert_complete_and_equal(out, references["memory"])
 
 
-@pytest.mark.parametrize("sig,name,ordinal", [(signal.SIGINT, "features", 2), (signal.SIGTERM, "sketch-cols", 1)],
-                         ids=["SIGINT", "SIGTERM"])
-def test_sigint_and_sigterm_save_and_say_how_to_resume(sig, name, ordinal, tables, references, tmp_path):
+@pytest.mark.parametrize("sig,name,ordinal", [(signal.SIGINT, "features", 2), (signal.SIGTERM, "sketch-cols", 1),
+                                              (signal.SIGINT, "features", 3)],
+                         ids=["SIGINT", "SIGTERM", "SIGINT-in-scores-pass"])
+def test_sigint_and_sigterm_save_and_say_how_to_resume(sig, name, ordinal, options, references, tmp_path):
     reference = references[name]
     passes = reference.attrs["passes"]
     out = tmp_path / "r.zarr"
-    block = int(np.random.default_rng([SEED, int(sig)]).integers(1, passes[ordinal - 1]["blocks"] - 1))
-    code, err = run_until(command(tables, name, out), out, in_pass(ordinal, block), sig=sig)
+    reached, delay = moment_in(name, ordinal, reference, np.random.default_rng([SEED, int(sig), ordinal]))
+    code, err = run_until(command(options, name, out), out, reached, sig=sig, delay=delay)
     assert code == 130, err
-    assert f"stopped by {sig.name} in pass {ordinal} of {len(passes)} ({passes[ordinal - 1]['name']})" in err
+    assert f"stopped by {sig.name} in pass {ordinal}" in err and f"({passes[ordinal - 1]['name']})" in err
     assert "Run the same command again to resume" in err and "--restart" in err
     assert "Traceback" not in err
     manifest = assert_checkpoint_consistent(out)
-    saved = manifest["passes"][ordinal - 1]["blocks_done"]
-    assert saved >= block and f"after block {saved:,} of" in err  # saved at the block it stopped after
     assert not os.path.exists(out)
-    err = finish(tables, name, out)
-    assert f"pass {ordinal} of {len(passes)} ({passes[ordinal - 1]['name']}), block {saved + 1:,}" in err
+    if passes[ordinal - 1]["name"] in CONFIGS[name][3]:
+        assert f"{ordinal - 1} earlier pass(es) are saved" in err
+        assert len(manifest["passes"]) == ordinal - 1 and all(p["complete"] for p in manifest["passes"])
+        resumed = f"{ordinal - 1} of {len(passes)} passes done; starting pass {ordinal} of {len(passes)}"
+    else:
+        saved = manifest["passes"][ordinal - 1]["blocks_done"]
+        assert f"after block {saved:,} of" in err  # saved at the block it stopped after
+        resumed = f"pass {ordinal} of {len(passes)} ({passes[ordinal - 1]['name']}), block {saved + 1:,}"
+    err = finish(options, name, out)
+    assert resumed in err
     assert_complete_and_equal(out, reference)
 
 
@@ -216,12 +262,12 @@ def test_sigint_and_sigterm_save_and_say_how_to_resume(sig, name, ordinal, table
 # SIGXFSZ so that the failure surfaces as an error, as ENOSPC would on a full disk.
 LIMIT_AT_RESULT_WRITE = """
 import resource, sys
-import rankfold.api as api
-write = api.write_result
-def limited(*args, **kwargs):
+from rankfold.result import ResultWriter
+add = ResultWriter.add
+def limited(self, *args, **kwargs):  # the arrays written after the passes, loadings first
     resource.setrlimit(resource.RLIMIT_FSIZE, ({n}, {n}))
-    return write(*args, **kwargs)
-api.write_result = limited
+    return add(self, *args, **kwargs)
+ResultWriter.add = limited
 from rankfold.cli import main
 sys.exit(main(sys.argv[1:]))
 """
@@ -234,30 +280,31 @@ def _limit_file_size(n):
 def assert_nothing_complete_looking(out):
     assert not os.path.exists(out)
     parent, base = os.path.split(os.path.abspath(out))
-    assert [f for f in os.listdir(parent) if f.startswith(f".{base}.partial")] == []
+    assert [f for f in os.listdir(parent) if f.startswith((f".{base}.partial", f".{base}.scratch"))] == []
 
 
-def test_result_write_failing_part_way_leaves_no_store_and_resume_finishes(tables, references, tmp_path):
+def test_result_write_failing_part_way_leaves_no_store_and_resume_finishes(options, references, tmp_path):
     out = tmp_path / "r.zarr"
-    argv = command(tables, "features", out)
+    argv = command(options, "features", out)
     limited = [sys.executable, "-c", LIMIT_AT_RESULT_WRITE.format(n=512), *argv[3:]]
     proc = subprocess.run(limited, capture_output=True, text=True, timeout=300)
     assert proc.returncode == 5, proc.stderr
     assert f"{out}: cannot write the result (File too large)" in proc.stderr
     assert "Traceback" not in proc.stderr
     assert_nothing_complete_looking(out)
-    # The passes were saved before the write: the rerun reads nothing and writes the same result.
+    # The route's passes were saved before the write; the scores pass, which writes rows as
+    # it reads, is read again.  The rerun writes the same result.
     manifest = assert_checkpoint_consistent(out)
-    assert all(p["complete"] for p in manifest["passes"]) and len(manifest["passes"]) == 2
-    err = finish(tables, "features", out)
-    assert "all 2 pass(es) done; finishing without reading the data again" in err
+    assert [p["complete"] for p in manifest["passes"]] == [True, True]
+    err = finish(options, "features", out)
+    assert "2 of 3 passes done; starting pass 3 of 3" in err
     assert_complete_and_equal(out, references["features"])
 
 
-def test_whole_run_under_a_file_size_limit(tables, tmp_path):
+def test_whole_run_under_a_file_size_limit(options, tmp_path):
     """The in-memory route's scores (24,000 x 3 float32, 288 KB) cannot be written past 64 KB."""
     out = tmp_path / "r.zarr"
-    proc = subprocess.run(command(tables, "memory", out), capture_output=True, text=True, timeout=300,
+    proc = subprocess.run(command(options, "memory", out), capture_output=True, text=True, timeout=300,
                           preexec_fn=_limit_file_size(64 * 1024))
     assert proc.returncode == 5, proc.stderr
     assert "cannot write the result (File too large)" in proc.stderr and "Traceback" not in proc.stderr
@@ -265,10 +312,10 @@ def test_whole_run_under_a_file_size_limit(tables, tmp_path):
     assert os.listdir(tmp_path) == []  # nor an empty checkpoint
 
 
-def test_checkpoint_write_failing_says_so(tables, tmp_path):
+def test_checkpoint_write_failing_says_so(options, tmp_path):
     """A state file (the 40 x 40 co-moment, ~13 KB) larger than the file system accepts."""
     out = tmp_path / "r.zarr"
-    proc = subprocess.run(command(tables, "features", out), capture_output=True, text=True, timeout=300,
+    proc = subprocess.run(command(options, "features", out), capture_output=True, text=True, timeout=300,
                           preexec_fn=_limit_file_size(8 * 1024))
     assert proc.returncode == 5, proc.stderr
     assert f"{checkpoint_folder(out)}: cannot save the checkpoint (File too large)" in proc.stderr
