@@ -169,8 +169,17 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
     try:
         _check_rank(src, rank)
         if out is not None:
-            ckpt = Checkpointer.open(out, _identity(locals()), src.fingerprint(), float(checkpoint_every),
-                                     bool(restart))
+            # What decides the answer, as asked: the route and the memory limit are resolved
+            # below ("auto", None for the default) and the checkpoint keeps what they became.
+            identity = {"rank": int(rank), "route": route, "accuracy": accuracy,
+                        "memory_limit": None if limit is None else int(limit),
+                        "standardize": bool(standardize), "missing": missing, "missing_code": missing_code,
+                        "columns": list(columns) if columns else None,
+                        "exclude": list(exclude) if exclude else None, "samples_as": samples_as,
+                        "array": array, "id_column": id_column, "seed": int(seed), "oversample": int(oversample),
+                        "power_iterations": int(power_iterations), "sketch": sketch, "scores": bool(scores),
+                        "scores_dtype": scores_dtype, "flag_threshold": float(flag_threshold)}
+            ckpt = Checkpointer.open(out, identity, src.fingerprint(), float(checkpoint_every), bool(restart))
         resolved = ckpt.resolved if ckpt is not None else None
         if limit is None:
             # A resumed run keeps the default ceiling it started with: the default follows the
@@ -217,27 +226,6 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
             ckpt.close()
         if not opened:
             src.close()
-
-
-def _identity(args: dict) -> dict:
-    """The arguments of :func:`decompose` that decide its answer, as a checkpoint records them.
-
-    The memory limit decides the block partition, the route which passes run;
-    both are recorded as asked for ("auto", None for the default), and the
-    checkpoint keeps what they resolved to (:meth:`Checkpointer.settle`).
-    """
-    def names(value):
-        return list(value) if value else None
-
-    return {"rank": int(args["rank"]), "route": args["route"], "accuracy": args["accuracy"],
-            "memory_limit": None if args["limit"] is None else int(args["limit"]),
-            "standardize": bool(args["standardize"]), "missing": args["missing"],
-            "missing_code": args["missing_code"], "columns": names(args["columns"]),
-            "exclude": names(args["exclude"]), "samples_as": args["samples_as"], "array": args["array"],
-            "id_column": args["id_column"], "seed": int(args["seed"]), "oversample": int(args["oversample"]),
-            "power_iterations": int(args["power_iterations"]), "sketch": args["sketch"],
-            "scores": bool(args["scores"]), "scores_dtype": args["scores_dtype"],
-            "flag_threshold": float(args["flag_threshold"])}
 
 
 def _run(inp: RouteInput, chosen: Plan, params: dict, writer: ResultWriter | None, scores_dtype: str,
