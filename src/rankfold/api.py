@@ -187,7 +187,7 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
             limit = resolved["memory_limit"] if resolved else default_memory_limit()
         request = dict(accuracy=accuracy, oversample=oversample, power_iterations=power_iterations,
                        sketch=sketch, missing=missing, standardize=standardize, scores=bool(scores),
-                       scratch_free=_free_disk(out))
+                       scratch_free=_free_disk(out), outputs_held=out is None)
         chosen = make_plan(plan_request(src, rank, limit, route=route, **request), speed or machine_speed())
         if resolved and chosen.route != resolved["route"]:
             # The choice rests on measured machine speeds, which drift between runs; the
@@ -214,7 +214,8 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
         try:
             inp = RouteInput(src, int(rank), bool(standardize), missing, limit, progress, int(oversample),
                              int(power_iterations), sketch, int(seed), scores=bool(scores),
-                             scratch=writer.scratch_folder() if writer else None, checkpoint=ckpt)
+                             scratch=writer.scratch_folder() if writer else None, outputs_held=writer is None,
+                             checkpoint=ckpt)
             with stopping.stop_on_signals():
                 return _run(inp, chosen, params, writer, scores_dtype, float(flag_threshold))
         except BaseException:

@@ -47,16 +47,30 @@ DEFAULT_FLAG_THRESHOLD = 3.5
 SCORE_DTYPES = ("float32", "float64")
 
 
-def chunk_rows(n_samples: int, width: int, itemsize: int = 8) -> int:
-    """Rows per chunk for a ``(n_samples, width)`` per-sample array."""
-    rows = max(1024, min(MAX_CHUNK_ROWS, CHUNK_BYTES // max(1, width * itemsize)))
+def chunk_rows(n_samples: int, width: int, itemsize: int = 8, chunk_bytes: int = CHUNK_BYTES) -> int:
+    """Rows per chunk for a ``(n_samples, width)`` per-sample array of about ``chunk_bytes``."""
+    rows = max(64, min(MAX_CHUNK_ROWS, chunk_bytes // max(1, width * itemsize)))
     return max(1, min(n_samples, rows))
 
 
+def writer_bytes(n_samples: int, width: int, chunk_bytes: int = CHUNK_BYTES) -> int:
+    """Memory a :class:`RowWriter` of ``width`` float64 columns holds: at most two chunks' rows."""
+    return 2 * chunk_rows(n_samples, width, chunk_bytes=chunk_bytes) * width * 8
+
+
 def buffer_bytes(n_samples: int, rank: int) -> int:
-    """Memory the writer holds: two chunks of scores and residuals, and every residual for the flag."""
-    rows = chunk_rows(n_samples, rank)
-    return 2 * rows * (rank + 3) * 8 + 2 * n_samples * 8
+    """Memory of the per-sample stage: the writer of scores and residuals, and every residual for the flag."""
+    return 2 * chunk_rows(n_samples, rank) * (rank + 2) * 8 + 2 * n_samples * 8
+
+
+def held_bytes(n_samples: int, rank: int) -> int:
+    """Per-sample outputs kept in memory (a result without a store): float64 scores, residuals, flags."""
+    return n_samples * (rank + 2) * 8 + n_samples
+
+
+def scratch_chunk_bytes(memory_limit: int) -> int:
+    """Chunk size of a scratch array: a small share of the ceiling, so its writer fits beside the blocks."""
+    return max(1 << 16, min(CHUNK_BYTES, memory_limit // 16))
 
 
 class RowWriter:
@@ -184,9 +198,9 @@ class TallProduct:
     chunk to form scores once the Ritz coefficients are known.
     """
 
-    def __init__(self, n: int, width: int, scratch: str | None):
+    def __init__(self, n: int, width: int, scratch: str | None, chunk_bytes: int = CHUNK_BYTES):
         self.n, self.width, self.scratch = n, width, scratch
-        self.chunk = chunk_rows(n, width)
+        self.chunk = chunk_rows(n, width + 1, chunk_bytes=chunk_bytes)
         if scratch is None:
             self.y = np.empty((n, width))
             self.sumsq = np.empty(n)

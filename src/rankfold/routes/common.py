@@ -13,7 +13,7 @@ from rankfold import stopping
 from rankfold.checkpoint import Checkpointer
 from rankfold.errors import DataError, Interrupted
 from rankfold.linalg import sign_flips
-from rankfold.sample_outputs import SampleParts, buffer_bytes
+from rankfold.sample_outputs import SampleParts, buffer_bytes, held_bytes
 from rankfold.sources.base import Partition, Source
 from rankfold.sources.readahead import iter_blocks
 
@@ -36,6 +36,7 @@ class RouteInput:
     seed: int = 0
     scores: bool = True  # whether per-sample outputs will be written (routes keep what they need)
     scratch: str | None = None  # folder for a tall intermediate that exceeds memory (created on demand)
+    outputs_held: bool = False  # per-sample outputs returned in memory (no result store): counted too
     checkpoint: Checkpointer | None = None  # saves and restores pass states (rankfold.checkpoint)
 
 
@@ -129,7 +130,10 @@ def run_pass(name: str, inp: RouteInput, partition: Partition, state,
 
 def output_bytes(inp: RouteInput) -> int:
     """Memory the per-sample stage holds beside a route's state (0 without scores)."""
-    return buffer_bytes(inp.source.n_samples, inp.rank) if inp.scores else 0
+    if not inp.scores:
+        return 0
+    n = inp.source.n_samples
+    return buffer_bytes(n, inp.rank) + (held_bytes(n, inp.rank) if inp.outputs_held else 0)
 
 
 def scratch_folder(inp: RouteInput) -> str:
