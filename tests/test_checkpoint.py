@@ -89,7 +89,9 @@ def tables(tmp_path_factory):
     rows = rng.standard_normal((3000, 12)) @ rng.standard_normal((12, 12)) + 5
     rows[rng.random(rows.shape) < 0.002] = np.nan
     cols = rng.standard_normal((400, 60)) + np.linspace(0, 3, 60)  # 400 features x 60 samples
+    clean = rng.standard_normal((3000, 20)) @ rng.standard_normal((20, 20)) + 50
     return {"rows": write_zarr(base / "rows.zarr", rows, (100, 12)),
+            "clean": write_zarr(base / "clean.zarr", clean, (100, 20)),
             "cols": write_zarr(base / "cols.zarr", cols, (10, 60))}
 
 
@@ -99,6 +101,7 @@ CONFIGS = {
     "features": ("rows", dict(route="features", missing="fill-mean"), 150),
     "samples": ("cols", dict(route="samples", samples_as="columns"), 20),
     "sketch-rows": ("rows", dict(route="sketch", missing="fill-mean", power_iterations=1, oversample=3), 150),
+    "fused-rows": ("clean", dict(route="sketch", power_iterations=2, oversample=3), 150),
     "krylov-cols": ("cols", dict(route="sketch", sketch="krylov", standardize=True, samples_as="columns",
                                  power_iterations=1, oversample=2), 20),
     "sketch-cols": ("cols", dict(route="sketch", samples_as="columns", power_iterations=1), 20),
