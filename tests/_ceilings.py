@@ -4,7 +4,8 @@ The fixed part of a route's memory (its state, the read buffers, the
 per-sample writer) changes as the code grows; asking the planner for the
 smallest ceiling it accepts and adding room for blocks of ``units`` samples
 (or features) keeps the number of blocks near ``length / units`` whatever
-that fixed part is.
+that fixed part is.  For runs that write a result store (``out``): without one
+the per-sample outputs are held in memory and need a larger ceiling.
 """
 
 from __future__ import annotations

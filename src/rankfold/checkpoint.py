@@ -246,7 +246,7 @@ class Checkpointer:
         if old is None or entry["blocks_done"] != blocks_done:
             name = f"pass-{entry['ordinal']:03d}-{blocks_done:07d}.state"
             try:
-                _write_file(self.folder, name, state.to_bytes())
+                _write_file(self.folder, name, _serializer(state))
             except OSError as exc:
                 raise _write_error(self.folder, exc) from None
             entry["state"] = name
@@ -336,13 +336,25 @@ class PassCursor:
 
 # -- files --------------------------------------------------------------------------------------
 
-def _write_file(folder: str, name: str, payload: bytes) -> None:
-    """Write ``payload`` to ``folder/name`` atomically and durably."""
+def _serializer(state):
+    """How to write ``state``: straight into the file, unless its class has its own ``to_bytes``."""
+    from rankfold.folds.base import FoldState
+
+    if isinstance(state, FoldState) and type(state).to_bytes is FoldState.to_bytes:
+        return state.write_to
+    return state.to_bytes()
+
+
+def _write_file(folder: str, name: str, payload) -> None:
+    """Write ``payload`` (bytes, or a function writing into a file) to ``folder/name`` atomically and durably."""
     final = os.path.join(folder, name)
     tmp = final + ".tmp"
     try:
         with open(tmp, "wb") as fh:
-            fh.write(payload)
+            if callable(payload):
+                payload(fh)
+            else:
+                fh.write(payload)
             fh.flush()
             os.fsync(fh.fileno())
         os.replace(tmp, final)

@@ -26,8 +26,17 @@ class FoldState:
     def to_bytes(self) -> bytes:
         """Compact serialization of the state (an uncompressed ``.npz`` payload)."""
         buf = io.BytesIO()
-        np.savez(buf, **{name: np.asarray(getattr(self, name)) for name in self._fields})
+        self.write_to(buf)
         return buf.getvalue()
+
+    def write_to(self, fileobj) -> None:
+        """Write what :meth:`to_bytes` returns into an open binary file.
+
+        numpy writes each array in chunks, so a checkpoint of a large state
+        (a features x features co-moment) needs no second copy in memory, as
+        ``to_bytes`` would (two, counting its buffer and the bytes).
+        """
+        np.savez(fileobj, **{name: np.asarray(getattr(self, name)) for name in self._fields})
 
     @classmethod
     def from_bytes(cls, payload: bytes):
