@@ -27,7 +27,6 @@ killed or the power fails.
 from __future__ import annotations
 
 import errno
-import fcntl
 import hashlib
 import json
 import os
@@ -37,6 +36,11 @@ import time
 import numpy as np
 
 from rankfold.errors import CheckpointError, OutputError
+
+try:
+    import fcntl
+except ImportError:  # not POSIX: runs sharing one checkpoint are not kept apart
+    fcntl = None
 
 FORMAT_VERSION = 1
 MANIFEST = "manifest.json"
@@ -101,9 +105,9 @@ class Checkpointer:
         folder = checkpoint_folder(out)
         try:
             os.makedirs(folder, exist_ok=True)
+            lock_fd = _lock(folder)
         except OSError as exc:
-            raise OutputError(f"{folder}: cannot create the checkpoint folder ({exc.strerror or exc})") from None
-        lock_fd = _lock(folder)
+            raise OutputError(f"{folder}: cannot create the checkpoint ({exc.strerror or exc})") from None
         try:
             parameters = _plain(parameters)
             fingerprint = _plain(fingerprint)
@@ -124,7 +128,10 @@ class Checkpointer:
 
                 manifest = {"format": FORMAT_VERSION, "rankfold": __version__, "source": fingerprint,
                             "parameters": parameters, "resolved": None, "passes": []}
-                _write_json(folder, MANIFEST, manifest)
+                try:
+                    _write_json(folder, MANIFEST, manifest)
+                except OSError as exc:
+                    raise _write_error(folder, exc) from None
             return cls(folder, manifest, every, lock_fd)
         except BaseException:
             _unlock(lock_fd)
@@ -414,6 +421,8 @@ def _lock(folder: str) -> int:
     """
     path = os.path.join(folder, LOCK)
     fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+    if fcntl is None:
+        return fd
     try:
         fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
     except OSError as exc:
