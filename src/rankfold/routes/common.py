@@ -13,6 +13,7 @@ from rankfold import stopping
 from rankfold.checkpoint import Checkpointer
 from rankfold.errors import DataError, Interrupted
 from rankfold.linalg import sign_flips
+from rankfold.memory import trim_heap
 from rankfold.sample_outputs import SampleParts, buffer_bytes, held_bytes
 from rankfold.sources.base import Partition, Source
 from rankfold.sources.readahead import iter_blocks
@@ -121,6 +122,7 @@ def run_pass(name: str, inp: RouteInput, partition: Partition, state,
         if signal_name and index + 1 < total:
             raise Interrupted(_stopped_message(signal_name, inp, name, cursor))
     record = PassRecord(name, partition.axis, total, partition.largest, read, before + time.perf_counter() - t0)
+    trim_heap()
     if cursor is not None:
         cursor.finish(state, record.as_dict())
     if stopping.requested():  # the pass is saved whole; stop before the next one starts
