@@ -18,7 +18,9 @@ open_projection(path) -> Projection
 
 from rankfold.api import decompose, plan
 from rankfold.errors import (
+    CheckpointError,
     DataError,
+    Interrupted,
     MemoryLimitError,
     OutputError,
     RankfoldError,
@@ -46,5 +48,7 @@ __all__ = [
     "DataError",
     "MemoryLimitError",
     "OutputError",
+    "CheckpointError",
+    "Interrupted",
     "__version__",
 ]

@@ -9,7 +9,9 @@ import time
 
 import numpy as np
 
-from rankfold.errors import SourceError, UsageError
+from rankfold import stopping
+from rankfold.checkpoint import DEFAULT_EVERY, Checkpointer
+from rankfold.errors import Interrupted, SourceError, UsageError
 from rankfold.memory import default_memory_limit, parse_memory, return_freed_memory_promptly
 from rankfold.result import Result, ResultWriter, check_output_path, open_result
 from rankfold.routes import scores as scores_stage
@@ -36,7 +38,8 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
               progress: ProgressCallback | None = None, accuracy: str = "exact", oversample: int = 10,
               power_iterations: int = 2, sketch: str = "subspace", scores: bool = True,
               scores_dtype: str = "float32", flag_threshold: float = DEFAULT_FLAG_THRESHOLD,
-              on_plan=None, speed: MachineSpeed | None = None) -> Result:
+              on_plan=None, speed: MachineSpeed | None = None, checkpoint_every: float = DEFAULT_EVERY,
+              restart: bool = False, on_resume=None) -> Result:
     """Leading principal components of a table, streamed in blocks within a memory ceiling.
 
     Parameters
@@ -100,6 +103,17 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
         Called with the :class:`~rankfold.planner.Plan` before any data is read.
     speed : MachineSpeed, optional
         Machine speeds for the time estimates; default the cached probe.
+    checkpoint_every : float
+        Seconds between checkpoints within a pass (default 300); 0 saves after
+        every block. Checkpoints are kept only when ``out`` is given, in
+        ``.NAME.checkpoint`` beside it (:mod:`rankfold.checkpoint`), and are
+        removed once the result is complete. Calling ``decompose`` again with
+        the same arguments resumes from the last one.
+    restart : bool
+        Discard a checkpoint left by an earlier run instead of resuming it.
+    on_resume : callable, optional
+        Called with a one-line message ("resuming ...: pass 2 of 4 (feature
+        Gram), block 342 of 1,000") when a checkpoint is resumed.
 
     Returns
     -------
@@ -110,6 +124,12 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
     Raises
     ------
     UsageError, SourceError, DataError, MemoryLimitError, OutputError
+    CheckpointError
+        A checkpoint beside ``out`` belongs to another source or other
+        parameters (the message lists what changed), or is in use.
+    Interrupted
+        SIGINT or SIGTERM arrived (handlers are installed while the passes run,
+        from the main thread only); the state was saved first when ``out`` is given.
 
     Notes
     -----
@@ -132,7 +152,10 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
     if isinstance(rank, bool) or not isinstance(rank, (int, np.integer)):
         raise UsageError(f"rank must be a whole number, got {rank!r}")
     _check_count("seed", seed, 0, 2**63 - 1)
-    limit = parse_memory(memory_limit) if memory_limit is not None else default_memory_limit()
+    if isinstance(checkpoint_every, bool) or not isinstance(checkpoint_every, (int, float, np.integer, np.floating)) \
+            or not np.isfinite(checkpoint_every) or checkpoint_every < 0:
+        raise UsageError(f"checkpoint_every must be a number of seconds, 0 or more; got {checkpoint_every!r}")
+    limit = parse_memory(memory_limit) if memory_limit is not None else None
     if out is not None:
         out = os.fspath(out)
         check_output_path(out, overwrite)
@@ -142,15 +165,41 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
     src = source if opened else open_source(os.fspath(source), samples_as=samples_as, columns=columns,
                                            exclude=exclude, id_column=id_column,
                                            missing_code=missing_code, array=array)
+    ckpt = None
     try:
         _check_rank(src, rank)
-        chosen = make_plan(plan_request(src, rank, limit, route=route, accuracy=accuracy, oversample=oversample,
-                                        power_iterations=power_iterations, sketch=sketch, missing=missing,
-                                        standardize=standardize, scores=bool(scores),
-                                        scratch_free=_free_disk(out), outputs_held=out is None),
-                           speed or machine_speed())
+        if out is not None:
+            # What decides the answer, as asked: the route and the memory limit are resolved
+            # below ("auto", None for the default) and the checkpoint keeps what they became.
+            identity = {"rank": int(rank), "route": route, "accuracy": accuracy,
+                        "memory_limit": None if limit is None else int(limit),
+                        "standardize": bool(standardize), "missing": missing, "missing_code": missing_code,
+                        "columns": list(columns) if columns else None,
+                        "exclude": list(exclude) if exclude else None, "samples_as": samples_as,
+                        "array": array, "id_column": id_column, "seed": int(seed), "oversample": int(oversample),
+                        "power_iterations": int(power_iterations), "sketch": sketch, "scores": bool(scores),
+                        "scores_dtype": scores_dtype, "flag_threshold": float(flag_threshold)}
+            ckpt = Checkpointer.open(out, identity, src.fingerprint(), float(checkpoint_every), bool(restart))
+        resolved = ckpt.resolved if ckpt is not None else None
+        if limit is None:
+            # A resumed run keeps the default ceiling it started with: the default follows the
+            # memory available now, and another ceiling would cut other blocks.
+            limit = resolved["memory_limit"] if resolved else default_memory_limit()
+        request = dict(accuracy=accuracy, oversample=oversample, power_iterations=power_iterations,
+                       sketch=sketch, missing=missing, standardize=standardize, scores=bool(scores),
+                       scratch_free=_free_disk(out), outputs_held=out is None)
+        chosen = make_plan(plan_request(src, rank, limit, route=route, **request), speed or machine_speed())
+        if resolved and chosen.route != resolved["route"]:
+            # The choice rests on measured machine speeds, which drift between runs; the
+            # checkpoint holds passes of the route first chosen, so keep it.
+            chosen = make_plan(plan_request(src, rank, limit, route=resolved["route"], **request),
+                               speed or machine_speed())
+        if ckpt is not None:
+            ckpt.settle(chosen.route, limit, chosen.estimate.passes)
         if on_plan is not None:
             on_plan(chosen)
+        if ckpt is not None and on_resume is not None and ckpt.resume_message():
+            on_resume(ckpt.resume_message())
         params = {"rank": int(rank), "standardize": bool(standardize), "missing": missing,
                   "missing_code": missing_code, "samples_as": samples_as, "route": chosen.route,
                   "memory_limit": int(limit), "seed": int(seed),
@@ -159,17 +208,23 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
                   "accuracy": accuracy, "oversample": int(oversample),
                   "power_iterations": int(power_iterations), "sketch": sketch, "scores": bool(scores),
                   "scores_dtype": scores_dtype, "flag_threshold": float(flag_threshold)}
-        writer = ResultWriter(out, overwrite) if out is not None else None
+        # With a checkpoint the partial store and scratch folder get a fixed name, so that a
+        # resumed run replaces what a killed one left (the checkpoint's lock keeps runs apart).
+        writer = ResultWriter(out, overwrite, tag="resumable" if ckpt else None) if out is not None else None
         try:
             inp = RouteInput(src, int(rank), bool(standardize), missing, limit, progress, int(oversample),
                              int(power_iterations), sketch, int(seed), scores=bool(scores),
-                             scratch=writer.scratch_folder() if writer else None, outputs_held=writer is None)
-            return _run(inp, chosen, params, writer, scores_dtype, float(flag_threshold))
+                             scratch=writer.scratch_folder() if writer else None, outputs_held=writer is None,
+                             checkpoint=ckpt)
+            with stopping.stop_on_signals():
+                return _run(inp, chosen, params, writer, scores_dtype, float(flag_threshold))
         except BaseException:
             if writer is not None:
                 writer.abandon()
             raise
     finally:
+        if ckpt is not None:
+            ckpt.close()
         if not opened:
             src.close()
 
@@ -180,6 +235,7 @@ def _run(inp: RouteInput, chosen: Plan, params: dict, writer: ResultWriter | Non
     src = inp.source
     t0 = time.perf_counter()
     dec = ROUTES[chosen.route].run(inp)
+    _stop_between_passes(inp)
     per_sample, flag, sample_ids = {}, None, None
     # No score exceeds sqrt((n - 1) * variance) of its component; past float32's range
     # (about 3.4e38) float32 would store inf, so such scores are kept in float64.
@@ -188,6 +244,7 @@ def _run(inp: RouteInput, chosen: Plan, params: dict, writer: ResultWriter | Non
         scores_dtype = params["scores_dtype"] = "float64"
     if inp.scores:
         per_sample, flag = _sample_outputs(dec, inp, writer, scores_dtype, flag_threshold)
+        _stop_between_passes(inp)
         # Ids go with scores; reading an id column of a billion rows for nothing would
         # break the memory ceiling, so they are read only when scores are stored.
         sample_ids = src.read_sample_ids()
@@ -209,7 +266,18 @@ def _run(inp: RouteInput, chosen: Plan, params: dict, writer: ResultWriter | Non
         for name, (data, dims, chunks) in _arrays(src, dec, sample_ids).items():
             writer.add(name, data, dims, chunks)
         writer.commit(attrs)
+    if inp.checkpoint is not None:
+        inp.checkpoint.remove()  # only once the result is complete under its name
     return open_result(writer.out)
+
+
+def _stop_between_passes(inp: RouteInput) -> None:
+    """Honour a SIGINT/SIGTERM that arrived after the last pass had saved its state."""
+    signal_name = stopping.requested()
+    if signal_name:
+        raise Interrupted(f"stopped by {signal_name} after the last pass; "
+                          + ("run the same command again to finish from the checkpoint in "
+                             f"{inp.checkpoint.folder}" if inp.checkpoint else "nothing was saved"))
 
 
 def _sample_outputs(dec: Decomposition, inp: RouteInput, writer: ResultWriter | None, scores_dtype: str,

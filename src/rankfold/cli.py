@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import os
 import shlex
+import signal
 import sys
 import time
 
@@ -40,6 +41,11 @@ def _parser() -> argparse.ArgumentParser:
     d.add_argument("--flag-threshold", type=float, default=3.5, metavar="T",
                    help="flag samples whose residual exceeds median + T x 1.4826 x MAD (default 3.5)")
     d.add_argument("--overwrite", action="store_true", help="replace an existing result store")
+    d.add_argument("--checkpoint-every", type=float, default=300.0, metavar="SECONDS",
+                   help="save the progress of a pass this often (default 300; 0 = after every block); "
+                        "rerunning the same command resumes from the last save")
+    d.add_argument("--restart", action="store_true",
+                   help="discard a checkpoint left by an earlier run of this command and start over")
     d.add_argument("--quiet", "-q", action="store_true", help="print nothing but errors")
 
     p = sub.add_parser("plan", help="say which route would run, its passes, memory and time, without reading data")
@@ -132,10 +138,16 @@ def _decompose(args) -> int:
     # Bars on a terminal, status lines otherwise, the run log beside the result (rankfold.progress).
     monitor = command_monitor(args.out, sys.stderr, quiet=args.quiet,
                               command=shlex.join(["rankfold", *args.argv]))
+
+    def show_resume(message: str) -> None:
+        if not args.quiet:
+            print(f"rankfold: {message}", file=sys.stderr, flush=True)
+
     with monitor:
         result = decompose(args.source, args.rank, id_column=args.id_column, seed=args.seed, out=args.out,
                            overwrite=args.overwrite, progress=monitor, on_plan=monitor.on_plan,
                            scores=args.scores, scores_dtype=args.scores_dtype, flag_threshold=args.flag_threshold,
+                           checkpoint_every=args.checkpoint_every, restart=args.restart, on_resume=show_resume,
                            **_common(args))
         lines = describe_result(result)
         monitor.finished(lines)
@@ -206,6 +218,11 @@ COMMANDS = {"decompose": _decompose, "plan": _plan, "project": _project, "show":
 def main(argv: list[str] | None = None) -> int:
     """Run the command line with ``argv``; return the exit code."""
     parser = _parser()
+    if hasattr(signal, "SIGXFSZ"):
+        # Past a file-size limit (ulimit -f) writes then fail with EFBIG, which the
+        # result and checkpoint writers turn into a message, instead of the signal
+        # killing the process without one.
+        signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
     try:
         args = parser.parse_args(argv)
     except SystemExit as exc:  # argparse has printed its usage message
@@ -217,7 +234,8 @@ def main(argv: list[str] | None = None) -> int:
         print(f"rankfold: error: {exc}", file=sys.stderr)
         return exc.exit_code
     except KeyboardInterrupt:
-        print("rankfold: interrupted; no result was written", file=sys.stderr)
+        print("rankfold: interrupted; no result was written. Run the same command again to resume from the "
+              "last checkpoint saved (if any), or add --restart to start over", file=sys.stderr)
         return EXIT_INTERRUPTED
     except MemoryError:
         print("rankfold: error: out of memory; lower --memory-limit so that blocks fit, "

@@ -10,6 +10,9 @@ Exit codes
 3  input: the data source is missing, unreadable or holds values we refuse
 4  resources: the memory ceiling (or disk) is too small for the job
 5  output: the result path exists or cannot be written
+6  checkpoint: a checkpoint beside the result belongs to another run (changed
+   source or parameters) or is in use or unreadable
+130 interrupted: stopped by SIGINT or SIGTERM after saving a checkpoint
 """
 
 from __future__ import annotations
@@ -49,3 +52,20 @@ class OutputError(RankfoldError):
     """The result path exists, cannot be written, or is not a rankfold result."""
 
     exit_code = 5
+
+
+class CheckpointError(RankfoldError):
+    """A checkpoint beside the result cannot be used for this run.
+
+    Raised when the source or the parameters changed since the checkpoint was
+    written (the message lists what changed), when another run holds it, or
+    when it is unreadable.  ``--restart`` (``restart=True``) discards it.
+    """
+
+    exit_code = 6
+
+
+class Interrupted(RankfoldError):
+    """The run stopped on SIGINT or SIGTERM; the message says how to resume."""
+
+    exit_code = 130

@@ -190,15 +190,20 @@ class ResultWriter:
     """
 
     def __init__(self, out: str, overwrite: bool, marker: tuple[str, int] = (FORMAT_KEY, FORMAT_VERSION),
-                 checked: bool = True):
+                 checked: bool = True, tag: str | None = None):
         import zarr
 
         if checked:
             check_output_path(out, overwrite)
         self.out, self.overwrite, self.marker, self.checked = out, overwrite, marker, checked
+        # The process id keeps concurrent writers apart; a resumable run passes a fixed
+        # ``tag`` instead (its checkpoint lock keeps runs apart) so that it replaces what a
+        # killed run left under the same name.
+        self.tag = tag or str(os.getpid())
         parent, name = os.path.split(os.path.abspath(out))
-        self.tmp = os.path.join(parent, f".{name}.partial-{os.getpid()}")
+        self.tmp = os.path.join(parent, f".{name}.partial-{self.tag}")
         _remove(self.tmp)
+        _remove(self.scratch_folder())
         try:
             self.group = zarr.open_group(self.tmp, mode="w", zarr_format=3)
         except OSError as exc:
@@ -208,7 +213,7 @@ class ResultWriter:
     def scratch_folder(self) -> str:
         """A folder beside the output for scratch arrays, removed by commit or abandon."""
         parent, name = os.path.split(os.path.abspath(self.out))
-        return os.path.join(parent, f".{name}.scratch-{os.getpid()}")
+        return os.path.join(parent, f".{name}.scratch-{self.tag}")
 
     def create(self, name: str, shape: tuple, dtype, dims: tuple, chunks: tuple):
         """An empty array to be filled in whole chunks."""

@@ -18,12 +18,25 @@ class FoldState:
     """Base class: subclasses list their array fields in ``_fields``."""
 
     _fields: tuple[str, ...] = ()
+    # Whether the fields are all there is: a state whose update also sends data elsewhere
+    # (rows to a writer, a captured product) cannot be restored part-way or skipped as
+    # done, since a restored state would not replay what it sent; checkpoints re-run its pass.
+    resumable: bool = True
 
     def to_bytes(self) -> bytes:
         """Compact serialization of the state (an uncompressed ``.npz`` payload)."""
         buf = io.BytesIO()
-        np.savez(buf, **{name: np.asarray(getattr(self, name)) for name in self._fields})
+        self.write_to(buf)
         return buf.getvalue()
+
+    def write_to(self, fileobj) -> None:
+        """Write what :meth:`to_bytes` returns into an open binary file.
+
+        numpy writes each array in chunks, so a checkpoint of a large state
+        (a features x features co-moment) needs no second copy in memory, as
+        ``to_bytes`` would (two, counting its buffer and the bytes).
+        """
+        np.savez(fileobj, **{name: np.asarray(getattr(self, name)) for name in self._fields})
 
     @classmethod
     def from_bytes(cls, payload: bytes):

@@ -36,6 +36,7 @@ class RowScores(FoldState):
     """
 
     _fields = ("loadings", "center", "scale")
+    resumable = False  # rows go to the sink as they are folded (see FoldState.resumable)
 
     def __init__(self, loadings, center, scale, sink, columns=None):
         self.loadings, self.center, self.scale = loadings, center, scale
@@ -76,6 +77,7 @@ class ColumnScores(FoldState):
     """
 
     _fields = ("loadings", "center", "scale", "scores", "sumsq")
+    lookup = None  # not serialized: a state rebuilt by from_bytes reads features in loading order
 
     def __init__(self, loadings, center, scale, n_samples: int, rows=None):
         self.loadings, self.center, self.scale = loadings, center, scale

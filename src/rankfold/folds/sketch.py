@@ -49,6 +49,7 @@ class CovarianceProduct(FoldState):
     """
 
     _fields = ("basis", "center", "scale", "product")
+    capture, capture_width = None, 0  # not serialized: a state rebuilt by from_bytes captures nothing
 
     def __init__(self, basis: np.ndarray, center: np.ndarray, scale: np.ndarray, capture=None,
                  capture_width: int = 0):
@@ -57,6 +58,7 @@ class CovarianceProduct(FoldState):
         self.scale = scale
         self.product = np.zeros_like(basis)
         self.capture, self.capture_width = capture, capture_width
+        self.resumable = capture is None  # a captured product lives outside the state
 
     def update(self, block: np.ndarray, start: int = 0) -> "CovarianceProduct":
         # Slabs of SLAB rows bound the temporaries (the thin product B Q and the

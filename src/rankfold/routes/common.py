@@ -9,7 +9,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from rankfold.errors import DataError
+from rankfold import stopping
+from rankfold.checkpoint import Checkpointer
+from rankfold.errors import DataError, Interrupted
 from rankfold.linalg import sign_flips
 from rankfold.memory import trim_heap
 from rankfold.sample_outputs import SampleParts, buffer_bytes, held_bytes
@@ -36,6 +38,7 @@ class RouteInput:
     scores: bool = True  # whether per-sample outputs will be written (routes keep what they need)
     scratch: str | None = None  # folder for a tall intermediate that exceeds memory (created on demand)
     outputs_held: bool = False  # per-sample outputs returned in memory (no result store): counted too
+    checkpoint: Checkpointer | None = None  # saves and restores pass states (rankfold.checkpoint)
 
 
 @dataclass
@@ -83,21 +86,48 @@ class Decomposition:
 
 def run_pass(name: str, inp: RouteInput, partition: Partition, state,
              prepare: Callable[[np.ndarray, int], np.ndarray]) -> tuple[object, PassRecord]:
-    """Fold every block of ``partition`` into ``state`` after ``prepare``; time it."""
+    """Fold every block of ``partition`` into ``state`` after ``prepare``; time it.
+
+    With a checkpoint (``inp.checkpoint``) a pass it holds as complete returns
+    the saved state and record without reading; a pass it holds in part
+    restores the state and starts at the first block not yet folded (earlier
+    blocks are never read).  The state is saved every ``checkpoint.every``
+    seconds and when the pass ends.  After each block a stop requested by
+    SIGINT or SIGTERM (:mod:`rankfold.stopping`) saves the state and raises
+    :class:`~rankfold.errors.Interrupted`.
+    """
     source = inp.source
     source.check_unchanged(name)  # a table rewritten between passes would mix two tables
-    t0 = time.perf_counter()
     total = len(partition)
-    read = 0
-    for index, start, block in iter_blocks(source, partition):
+    cursor = None
+    if inp.checkpoint is not None:
+        cursor = inp.checkpoint.begin_pass(name, partition, getattr(state, "resumable", True))
+    first, read, before = 0, 0, 0.0
+    if cursor is not None:
+        if cursor.complete:
+            return cursor.restore(state), PassRecord(**cursor.record)
+        if cursor.blocks_done:
+            state = cursor.restore(state)
+            first, read, before = cursor.blocks_done, cursor.bytes_read, cursor.seconds
+    t0 = time.perf_counter()
+    for index, start, block in iter_blocks(source, partition, first=first):
         read += block.size * source.storage_dtype.itemsize
         state.update(prepare(block, start), start)
         del block
+        signal_name = stopping.requested()
+        if cursor is not None and (signal_name or cursor.due()) and index + 1 < total:
+            cursor.save(state, index + 1, read, before + time.perf_counter() - t0)
         if inp.progress is not None:
             inp.progress({"pass": name, "block": index + 1, "blocks": total, "bytes": read,
-                          "seconds": time.perf_counter() - t0})
-    record = PassRecord(name, partition.axis, total, partition.largest, read, time.perf_counter() - t0)
+                          "seconds": before + time.perf_counter() - t0})
+        if signal_name and index + 1 < total:
+            raise Interrupted(_stopped_message(signal_name, inp, name, cursor))
+    record = PassRecord(name, partition.axis, total, partition.largest, read, before + time.perf_counter() - t0)
     trim_heap()
+    if cursor is not None:
+        cursor.finish(state, record.as_dict())
+    if stopping.requested():  # the pass is saved whole; stop before the next one starts
+        raise Interrupted(_stopped_message(stopping.requested(), inp, name, cursor))
     return state, record
 
 
@@ -117,6 +147,25 @@ def scratch_folder(inp: RouteInput) -> str:
         return tempfile.mkdtemp(prefix="rankfold-scratch-")
     os.makedirs(inp.scratch, exist_ok=True)
     return tempfile.mkdtemp(prefix="tall-", dir=inp.scratch)
+
+
+def _stopped_message(signal_name: str, inp: RouteInput, name: str, cursor) -> str:
+    if cursor is None and inp.checkpoint is not None:
+        return inp.checkpoint.stopped_unsaved(signal_name, name)
+    if cursor is None:
+        return (f"stopped by {signal_name}; nothing was saved (checkpoints are kept only when a "
+                "result path is given); run the command again to start over")
+    return cursor.stopped_message(signal_name)
+
+
+def stop_point(inp: RouteInput) -> None:
+    """Raise :class:`~rankfold.errors.Interrupted` if a stop was requested (routes without passes)."""
+    signal_name = stopping.requested()
+    if signal_name:
+        if inp.checkpoint is None:
+            raise Interrupted(_stopped_message(signal_name, inp, "", None))
+        raise Interrupted(f"stopped by {signal_name}; this route reads the table in one go, so nothing "
+                          "was saved; run the same command again to start over")
 
 
 def check_numerical_rank(values: np.ndarray, size: int, inp: RouteInput) -> np.ndarray:
