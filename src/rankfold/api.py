@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import datetime
 import os
 import platform
@@ -34,7 +35,7 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
               missing_code: float | None = None, array: str | None = None, overwrite: bool = False,
               progress: ProgressCallback | None = None, accuracy: str = "exact", oversample: int = 10,
               power_iterations: int = 2, sketch: str = "subspace",
-              on_plan=None, speed: MachineSpeed | None = None) -> Result:
+              on_plan=None, speed: MachineSpeed | None = None, cluster=None) -> Result:
     """Leading principal components of a table, streamed in blocks within a memory ceiling.
 
     Parameters
@@ -88,6 +89,12 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
         Called with the :class:`~rankfold.planner.Plan` before any data is read.
     speed : MachineSpeed, optional
         Machine speeds for the time estimates; default the cached probe.
+    cluster : distributed.Client or str, optional
+        Run every pass as tasks on a dask.distributed cluster: a client, a
+        scheduler address (``"tcp://host:8786"``), or ``"local:N"`` for N
+        worker processes on this machine (started and closed here).  Workers
+        open the source themselves, so it must be a path or URL they can all
+        read.  The in-memory route runs in this process.  See docs/cluster.md.
 
     Returns
     -------
@@ -118,6 +125,10 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
     if isinstance(rank, bool) or not isinstance(rank, (int, np.integer)):
         raise UsageError(f"rank must be a whole number, got {rank!r}")
     _check_count("seed", seed, 0, 2**63 - 1)
+    if cluster is not None:
+        from rankfold.cluster import check_cluster_argument
+
+        check_cluster_argument(cluster)
     limit = parse_memory(memory_limit) if memory_limit is not None else default_memory_limit()
     if out is not None:
         out = os.fspath(out)
@@ -137,9 +148,11 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
             on_plan(chosen)
         route, reasons = chosen.route, chosen.reasons
         t0 = time.perf_counter()
-        inp = RouteInput(src, int(rank), bool(standardize), missing, limit, progress, int(oversample),
-                         int(power_iterations), sketch, int(seed))
-        dec = ROUTES[route].run(inp)
+        with _cluster_session(cluster, src, route) as session:
+            inp = RouteInput(src, int(rank), bool(standardize), missing, limit, progress, int(oversample),
+                             int(power_iterations), sketch, int(seed), cluster=session)
+            dec = ROUTES[route].run(inp)
+            cluster_attrs = session.summary() if session is not None else None
         seconds = time.perf_counter() - t0
         params = {"rank": int(rank), "standardize": bool(standardize), "missing": missing,
                   "missing_code": missing_code, "samples_as": samples_as, "route": route,
@@ -149,6 +162,8 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
                   "accuracy": accuracy, "oversample": int(oversample),
                   "power_iterations": int(power_iterations), "sketch": sketch}
         attrs = _attributes(src, dec, params, reasons, seconds)
+        if cluster_attrs is not None:
+            attrs["cluster"] = cluster_attrs
         attrs["plan"] = {"estimated_seconds": round(chosen.estimate.seconds, 3),
                          "estimated_peak_memory": int(chosen.estimate.peak_memory),
                          "passes": chosen.estimate.passes, "bytes_read": chosen.estimate.bytes_read}
@@ -165,6 +180,19 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
     finally:
         if not opened:
             src.close()
+
+
+def _cluster_session(cluster, src: Source, route: str):
+    """A checked cluster session for the run, or a null context for serial runs.
+
+    The in-memory route makes no pass (one LAPACK call in this process), but the
+    cluster is still connected and checked, so a bad ``cluster=`` never passes silently.
+    """
+    if cluster is None:
+        return contextlib.nullcontext()
+    from rankfold.cluster import connect
+
+    return connect(cluster, src)
 
 
 def plan_request(src: Source, rank: int, limit: int, **options) -> PlanRequest:

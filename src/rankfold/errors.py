@@ -10,6 +10,8 @@ Exit codes
 3  input: the data source is missing, unreadable or holds values we refuse
 4  resources: the memory ceiling (or disk) is too small for the job
 5  output: the result path exists or cannot be written
+6  cluster: the scheduler cannot be reached, workers cannot read the data, or their
+   versions differ from this process's
 """
 
 from __future__ import annotations
@@ -49,3 +51,9 @@ class OutputError(RankfoldError):
     """The result path exists, cannot be written, or is not a rankfold result."""
 
     exit_code = 5
+
+
+class ClusterError(RankfoldError):
+    """The dask cluster cannot run the job: unreachable, mismatched, or blind to the data."""
+
+    exit_code = 6

@@ -30,6 +30,12 @@ class RouteInput:
     power_iterations: int = 2
     sketch: str = "subspace"
     seed: int = 0
+    cluster: object | None = None  # a rankfold.cluster.ClusterSession: passes run as cluster tasks
+
+    def __getstate__(self) -> dict:
+        # Pickled into cluster tasks (inside prepare closures): workers get the parameters
+        # only; the progress callback and the cluster handle belong to the client.
+        return {**self.__dict__, "progress": None, "cluster": None}
 
 
 @dataclass
@@ -78,6 +84,10 @@ class Decomposition:
 def run_pass(name: str, inp: RouteInput, partition: Partition, state,
              prepare: Callable[[np.ndarray, int], np.ndarray]) -> tuple[object, PassRecord]:
     """Fold every block of ``partition`` into ``state`` after ``prepare``; time it."""
+    if inp.cluster is not None:
+        from rankfold.cluster.passes import cluster_pass
+
+        return cluster_pass(name, inp, partition, state, prepare)
     source = inp.source
     t0 = time.perf_counter()
     total = len(partition)

@@ -7,11 +7,13 @@ per format; ``readahead`` overlaps reading with arithmetic.
 from __future__ import annotations
 
 import os
+import uuid
 
 from rankfold.errors import SourceError, UsageError
 from rankfold.sources.base import Partition, Source
 from rankfold.sources.npy import NpySource
 from rankfold.sources.parquet import ParquetSource
+from rankfold.sources.spec import SourceSpec
 from rankfold.sources.zarr_array import ZarrSource
 
 __all__ = ["open_source", "Source", "Partition", "NpySource", "ParquetSource", "ZarrSource"]
@@ -73,6 +75,18 @@ def open_source(path: str, *, samples_as: str = "rows", columns=None, exclude=No
     """
     if samples_as not in ("rows", "columns"):
         raise UsageError(f"samples_as must be 'rows' or 'columns', got {samples_as!r}")
+    src = _open(path, samples_as=samples_as, columns=columns, exclude=exclude, id_column=id_column,
+                missing_code=missing_code, array=array)
+    options = {"samples_as": samples_as, "columns": columns, "exclude": exclude, "id_column": id_column,
+               "missing_code": missing_code, "array": array}
+    src._spec = SourceSpec(
+        path if "://" in path else os.path.abspath(path),
+        tuple((k, tuple(v) if isinstance(v, list) else v) for k, v in options.items() if v is not None),
+        uuid.uuid4().hex, (src.n_samples, src.n_features), str(src.storage_dtype))
+    return src
+
+
+def _open(path: str, *, samples_as, columns, exclude, id_column, missing_code, array) -> Source:
     fmt = detect_format(path)
     if fmt == "parquet":
         if samples_as != "rows":

@@ -1,0 +1,116 @@
+"""One pass over the data as cluster tasks (the client side of :mod:`rankfold.cluster`).
+
+The partition's blocks are cut into contiguous ranges, ``TASKS_PER_THREAD``
+per worker thread (enough to even out a slow worker, few enough that states
+stay a small part of the traffic).  Each range is a task that folds its
+blocks into a fresh copy of the empty state; results merge pairwise in a
+balanced tree of tasks on the workers (so large states such as an n x n Gram
+matrix are added where they are, and only the final state comes back to the
+client).  Merging is exact for every state (:mod:`rankfold.folds`), so the
+answer equals a serial pass to rounding (about 1e-15 relative, merge order).
+"""
+
+from __future__ import annotations
+
+import time
+import uuid
+
+import cloudpickle
+
+from rankfold.cluster.worker import fold_range, merge_pair, pack_state
+from rankfold.errors import ClusterError
+from rankfold.routes.common import PassRecord
+from rankfold.sources.base import Partition
+
+TASKS_PER_THREAD = 3
+
+
+def block_ranges(n_blocks: int, n_tasks: int) -> list[tuple[int, int]]:
+    """Cut ``n_blocks`` into ``n_tasks`` (or fewer) contiguous ranges of near-equal length."""
+    n_tasks = max(1, min(n_blocks, n_tasks))
+    edges = [round(i * n_blocks / n_tasks) for i in range(n_tasks + 1)]
+    return [(a, b) for a, b in zip(edges[:-1], edges[1:]) if b > a]
+
+
+def cluster_pass(name: str, inp, partition: Partition, state, prepare) -> tuple[object, PassRecord]:
+    """Run one pass of ``partition`` on ``inp.cluster``; same contract as ``run_pass``.
+
+    ``state`` is the empty template; its class, its bytes and ``prepare`` are
+    shipped with each task.  Returns the merged state and the pass record.
+    """
+    from distributed import as_completed
+
+    session = inp.cluster
+    client = session.client
+    source = inp.source
+    spec = source.spec()
+    t0 = time.perf_counter()
+    cls = type(state)
+    template = pack_state(state)
+    names = {"feature_names": getattr(state, "feature_names", None) is not None,
+             "source_path": getattr(state, "source_path", None)}
+    shipped = len(template) + len(cloudpickle.dumps(prepare)) + len(cloudpickle.dumps(spec))
+    ranges = block_ranges(len(partition), TASKS_PER_THREAD * session.threads)
+    key = f"rankfold-{name.replace(' ', '-')}-{uuid.uuid4().hex[:8]}"
+    folds = []
+    for i, (a, b) in enumerate(ranges):
+        folds.append(client.submit(fold_range, spec, partition.axis, partition.bounds[a:b], cls, template,
+                                   prepare, session.blas_limits, names, key=f"{key}-fold-{i}", pure=False))
+    level, depth, merges = folds, 0, []
+    while len(level) > 1:
+        depth += 1
+        nxt = [client.submit(merge_pair, cls, level[i], level[i + 1], key=f"{key}-merge-{depth}-{i // 2}",
+                             pure=False) for i in range(0, len(level) - 1, 2)]
+        merges.extend(nxt)
+        if len(level) % 2:
+            nxt.append(level[-1])
+        level = nxt
+    root = level[0]
+    session.tasks += len(folds) + (len(folds) - 1)
+    done_blocks = read = 0
+    moved = len(folds) * shipped
+    try:
+        for future in as_completed(folds):
+            payload, blocks, nbytes = future.result()
+            done_blocks += blocks
+            read += nbytes
+            moved += len(payload)  # each fold's state travels once to its merge (or to us)
+            if inp.progress is not None:
+                inp.progress({"pass": name, "block": done_blocks, "blocks": len(partition), "bytes": read,
+                              "seconds": time.perf_counter() - t0})
+        payload, blocks, nbytes = root.result()
+    except Exception as exc:
+        # Stop what is still queued; finished futures are released with their references
+        # (cancelling a finished future that a merge still needs upsets the scheduler).
+        pending = [f for f in [*folds, *merges] if not f.done()]
+        if pending:
+            client.cancel(pending)
+        _reraise(exc, name)
+    # Merged states travel to the next merge: one state per merge task, plus the final one.
+    moved += (len(folds) - 1) * len(payload)
+    session.bytes_moved += moved
+    merged = cls.from_bytes(payload)
+    for attr in ("feature_names", "source_path"):
+        if getattr(state, attr, None) is not None:
+            setattr(merged, attr, getattr(state, attr))
+    record = PassRecord(name, partition.axis, len(partition), partition.largest, read, time.perf_counter() - t0)
+    return merged, record
+
+
+def _reraise(exc: Exception, name: str):
+    """Our own errors pass through (a DataError found on a worker); cluster failures get a message."""
+    from rankfold.errors import RankfoldError
+
+    if isinstance(exc, RankfoldError):
+        raise exc.with_traceback(None) from None
+    from distributed.scheduler import KilledWorker
+
+    if isinstance(exc, KilledWorker):
+        raise ClusterError(f"the {name} pass failed: workers died repeatedly while running one of its tasks "
+                           f"({exc}); check the workers' memory against the planner's peak estimate "
+                           "(`rankfold plan`)") from None
+    if isinstance(exc, (OSError, TimeoutError)) or type(exc).__name__ in ("CommClosedError", "CancelledError",
+                                                                          "FutureCancelledError"):
+        raise ClusterError(f"the {name} pass lost its cluster ({type(exc).__name__}: {exc}); "
+                           "no result was written") from None
+    raise exc
