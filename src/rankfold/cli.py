@@ -34,6 +34,7 @@ def _parser() -> argparse.ArgumentParser:
     d.add_argument("--seed", type=int, default=0, help="seed of the random test matrix (randomized route)")
     d.add_argument("--overwrite", action="store_true", help="replace an existing result store")
     d.add_argument("--quiet", "-q", action="store_true", help="print nothing but errors")
+    _cluster_option(d)
 
     p = sub.add_parser("plan", help="say which route would run, its passes, memory and time, without reading data")
     p.add_argument("source", metavar="SOURCE", help="Parquet file or folder, Zarr array or group, or .npy file")
@@ -66,6 +67,12 @@ def _source_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--missing-code", type=float, metavar="VALUE",
                    help="a stored value meaning missing, e.g. -1 in integer genotype stores")
     p.add_argument("--array", metavar="NAME", help="array inside a Zarr group")
+
+
+def _cluster_option(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--cluster", metavar="ADDRESS|local:N",
+                   help="run the passes on a dask.distributed cluster: a scheduler address "
+                        "(tcp://host:8786) or local:N for N worker processes on this machine")
 
 
 def _planning_options(p: argparse.ArgumentParser) -> None:
@@ -118,7 +125,8 @@ def _decompose(args) -> int:
             print("\n".join(plan.lines()), file=sys.stderr)
 
     result = decompose(args.source, args.rank, id_column=args.id_column, seed=args.seed, out=args.out,
-                       overwrite=args.overwrite, progress=progress, on_plan=show_plan, **_common(args))
+                       overwrite=args.overwrite, progress=progress, on_plan=show_plan, cluster=args.cluster,
+                       **_common(args))
     if not args.quiet:
         print("\n".join(describe_result(result)))
     return 0

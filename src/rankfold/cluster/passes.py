@@ -66,19 +66,24 @@ def cluster_pass(name: str, inp, partition: Partition, state, prepare) -> tuple[
             nxt.append(level[-1])
         level = nxt
     root = level[0]
-    session.tasks += len(folds) + (len(folds) - 1)
+    session.tasks += len(folds) + len(merges)
+    position = {f.key: i for i, f in enumerate(folds)}
+    unit_bytes = source.other_length(partition.axis) * source.storage_dtype.itemsize
     done_blocks = read = 0
-    moved = len(folds) * shipped
     try:
-        for future in as_completed(folds):
-            payload, blocks, nbytes = future.result()
-            done_blocks += blocks
-            read += nbytes
-            moved += len(payload)  # each fold's state travels once to its merge (or to us)
-            if inp.progress is not None:
-                inp.progress({"pass": name, "block": done_blocks, "blocks": len(partition), "bytes": read,
-                              "seconds": time.perf_counter() - t0})
-        payload, blocks, nbytes = root.result()
+        # Progress comes from completion notices only: fold states stay on the workers
+        # for their merges, and only the root's state is fetched.
+        with client.as_current():  # as_completed looks for the current client; ours need not be the default
+            for future in as_completed(folds):
+                if future.status == "error":
+                    future.result()  # raises the worker's exception here
+                a, b = ranges[position[future.key]]
+                done_blocks += b - a
+                read += sum(hi - lo for lo, hi in partition.bounds[a:b]) * unit_bytes
+                if inp.progress is not None:
+                    inp.progress({"pass": name, "block": done_blocks, "blocks": len(partition), "bytes": read,
+                                  "seconds": time.perf_counter() - t0})
+        payload, blocks, read = root.result()
     except Exception as exc:
         # Stop what is still queued; finished futures are released with their references
         # (cancelling a finished future that a merge still needs upsets the scheduler).
@@ -86,9 +91,9 @@ def cluster_pass(name: str, inp, partition: Partition, state, prepare) -> tuple[
         if pending:
             client.cancel(pending)
         _reraise(exc, name)
-    # Merged states travel to the next merge: one state per merge task, plus the final one.
-    moved += (len(folds) - 1) * len(payload)
-    session.bytes_moved += moved
+    # Upper bound of the traffic: every task's arguments once, and every fold or merge
+    # result once to its merge or to us (states have the same size whatever their range).
+    session.bytes_moved += len(folds) * shipped + (len(folds) + len(merges)) * len(payload)
     merged = cls.from_bytes(payload)
     for attr in ("feature_names", "source_path"):
         if getattr(state, attr, None) is not None:

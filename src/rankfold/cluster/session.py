@@ -138,7 +138,7 @@ def _host_cores():
 
 
 @contextlib.contextmanager
-def connect(cluster, source=None, timeout: float = CONNECT_TIMEOUT):
+def connect(cluster, source=None, timeout: float | None = None):
     """Connect (or start a local cluster), check it, yield a :class:`ClusterSession`, clean up.
 
     Parameters
@@ -147,8 +147,9 @@ def connect(cluster, source=None, timeout: float = CONNECT_TIMEOUT):
         A client (left open at the end), a scheduler address, or ``"local:N"``.
     source : Source, optional
         Checked to be readable by every worker.
-    timeout : float
-        Seconds to wait for the scheduler and for its first worker.
+    timeout : float, optional
+        Seconds to wait for the scheduler and for its first worker
+        (default ``CONNECT_TIMEOUT``).
 
     Raises
     ------
@@ -158,6 +159,7 @@ def connect(cluster, source=None, timeout: float = CONNECT_TIMEOUT):
         Unreachable scheduler, no workers, version mismatch, data not visible.
     """
     check_cluster_argument(cluster)
+    timeout = CONNECT_TIMEOUT if timeout is None else float(timeout)
     stack = contextlib.ExitStack()
     with stack:
         client, label = _client(cluster, timeout, stack)
