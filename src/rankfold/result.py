@@ -28,6 +28,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from rankfold.errors import OutputError
+from rankfold.sources.location import is_url, join, local_or_url, parent, url_fs
 
 FORMAT_VERSION = 1
 FORMAT_KEY = "rankfold_format"
@@ -98,7 +99,8 @@ def open_result(path: str) -> Result:
     """
     import zarr
 
-    if not os.path.isdir(path):
+    path = local_or_url(path)
+    if not _isdir(path):
         raise OutputError(f"{path}: no such result folder")
     try:
         group = zarr.open_group(path, mode="r")
@@ -125,6 +127,16 @@ def check_output_path(out: str, overwrite: bool) -> None:
     ``overwrite`` replaces only a previous rankfold result: a mistyped ``--out``
     must not delete a data folder.
     """
+    out = local_or_url(out)
+    if is_url(out):
+        fs, p = url_fs(out)
+        if fs.exists(p):
+            if not overwrite:
+                raise OutputError(f"{out}: already exists; choose another --out or pass --overwrite to replace it")
+            if not _is_result(out):
+                raise OutputError(f"{out}: exists and is not a rankfold result, so --overwrite will not "
+                                  "replace it; remove it yourself or choose another --out")
+        return  # object stores have no folders to check; a write failure is reported when it happens
     if os.path.lexists(out):
         if not overwrite:
             raise OutputError(f"{out}: already exists; choose another --out or pass --overwrite to replace it")
@@ -142,6 +154,14 @@ def _is_result(path: str) -> bool:
     """Whether ``path`` is a folder holding a rankfold result (complete or not)."""
     import json
 
+    if is_url(path):
+        fs, p = url_fs(path)
+        try:
+            with fs.open(p.rstrip("/") + "/zarr.json", "rb") as fh:
+                attrs = json.load(fh).get("attributes", {})
+        except (OSError, ValueError):
+            return False
+        return FORMAT_KEY in attrs or "route" in attrs
     meta = os.path.join(path, "zarr.json")
     if not os.path.isdir(path) or not os.path.isfile(meta):
         return False
@@ -157,9 +177,10 @@ def write_result(out: str, arrays: dict, attrs: dict, overwrite: bool) -> None:
     """Write ``arrays`` (name -> (data, dims, chunks)) and ``attrs`` atomically to ``out``."""
     import zarr
 
+    out = local_or_url(out)  # file:// gets the local rename, atomic
     check_output_path(out, overwrite)
-    parent, name = os.path.split(os.path.abspath(out))
-    tmp = os.path.join(parent, f".{name}.partial-{os.getpid()}")
+    parent, name = _split(out)
+    tmp = join(parent, f".{name}.partial-{os.getpid()}")
     _remove(tmp)
     try:
         group = zarr.open_group(tmp, mode="w", zarr_format=3)
@@ -171,13 +192,13 @@ def write_result(out: str, arrays: dict, attrs: dict, overwrite: bool) -> None:
             arr[...] = data.astype(str) if dtype is str else data
         group.attrs.update(attrs)
         group.attrs[FORMAT_KEY] = FORMAT_VERSION  # written last: marks the store complete
-        if os.path.exists(out):
-            trash = os.path.join(parent, f".{name}.replaced-{os.getpid()}")
-            os.rename(out, trash)
-            os.rename(tmp, out)
+        if _exists(out):
+            trash = join(parent, f".{name}.replaced-{os.getpid()}")
+            _rename(out, trash)
+            _rename(tmp, out)
             _remove(trash)
         else:
-            os.rename(tmp, out)
+            _rename(tmp, out)
     except OSError as exc:
         _remove(tmp)
         raise OutputError(f"{out}: cannot write the result ({exc.strerror or exc}); nothing was left behind") from None
@@ -186,8 +207,45 @@ def write_result(out: str, arrays: dict, attrs: dict, overwrite: bool) -> None:
         raise
 
 
+# Local paths use plain os calls (a rename within a folder is atomic); fsspec URLs use
+# the URL's filesystem: on file:// and memory:// a move is a rename, on object stores
+# (s3://, gs://) a copy then a delete, so there the complete-store marker written last
+# (FORMAT_KEY) is what tells a finished store from an interrupted one.
+def _split(out: str) -> tuple[str, str]:
+    if is_url(out):
+        return parent(out), out.rstrip("/").rsplit("/", 1)[1]
+    return os.path.split(os.path.abspath(out))
+
+
+def _exists(path: str) -> bool:
+    if is_url(path):
+        fs, p = url_fs(path)
+        return fs.exists(p)
+    return os.path.exists(path)
+
+
+def _isdir(path: str) -> bool:
+    if is_url(path):
+        fs, p = url_fs(path)
+        return fs.isdir(p)
+    return os.path.isdir(path)
+
+
+def _rename(src: str, dst: str) -> None:
+    if is_url(src):
+        fs, p = url_fs(src)
+        fs.mv(p, url_fs(dst)[1], recursive=True)
+    else:
+        os.rename(src, dst)
+
+
 def _remove(path: str) -> None:
     """Delete a folder tree or a file, whichever ``path`` is; ignore a missing one."""
+    if is_url(path):
+        fs, p = url_fs(path)
+        if fs.exists(p):
+            fs.rm(p, recursive=True)
+        return
     if os.path.isdir(path) and not os.path.islink(path):
         shutil.rmtree(path, ignore_errors=True)
     elif os.path.lexists(path):

@@ -76,3 +76,10 @@ def tree_stat(path: str) -> dict:
               for i in files.values()]
     return {"count": len(files), "bytes": int(sum(int(i.get("size") or 0) for i in files.values())),
             "latest_modified": max(stamps, default="")}
+
+
+def local_or_url(path: str) -> str:
+    """A ``file://`` URL as the plain local path it names (so local guarantees apply); others unchanged."""
+    if str(path).startswith("file://"):
+        return url_fs(path)[1]
+    return path
