@@ -328,6 +328,28 @@ def test_version_mismatch_names_worker_and_package(client, monkeypatch, planted,
     assert not out.exists()
 
 
+def test_workers_that_cannot_see_the_data_are_named(client, planted, tmp_path):
+    """memory:// lives inside one process: the client sees the table, the workers cannot."""
+    import zarr
+
+    url = f"memory://rankfold-cluster-{os.getpid()}/table.zarr"
+    zarr.create_array(url, shape=planted.shape, chunks=(50, 24), dtype=planted.dtype)[...] = planted
+    out = tmp_path / "r.zarr"
+    with pytest.raises(ClusterError) as err:
+        rankfold.decompose(url, 2, route="features", cluster=client, out=out)
+    message = str(err.value)
+    assert url in message and "worker tcp://127.0.0.1:" in message and "no such file" in message
+    assert err.value.exit_code == 6 and not out.exists()
+
+
+def test_file_url_source_on_the_cluster_equals_serial(client, planted, write_parquet, limit_for_blocks):
+    path = write_parquet(planted, row_group_size=30)
+    limit = limit_for_blocks(path, "features", 6, rank=3)
+    serial = rankfold.decompose(path, 3, route="features", memory_limit=limit)
+    clustered = rankfold.decompose("file://" + path, 3, route="features", memory_limit=limit, cluster=client)
+    _assert_same(clustered, serial, EXACT)
+
+
 @pytest.mark.slow
 def test_cli_cluster_local_2_and_unreachable_scheduler(planted, write_parquet, tmp_path):
     """The command line end to end in real subprocesses: local:2 gives the serial answer;
