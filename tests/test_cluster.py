@@ -159,16 +159,32 @@ def test_every_route_prepare_pickles_as_a_recipe_not_the_source(monkeypatch, wri
     names = {name for name, *_ in seen}
     assert {"column means", "feature Gram", "column moments", "power iteration", "Rayleigh-Ritz",
             "sample Gram", "loadings"} <= names
+    from rankfold.sources import Source
+
     for name, size, payload, client_source in seen:
         assert size < 16_000, name  # a recipe and a few vectors, never a block (300 x 24 x 8 = 57,600 bytes)
         restored = pickle.loads(payload)
         cells = [c.cell_contents for c in (restored.__closure__ or ())]
         for value in cells:
+            if isinstance(value, Source):
+                assert value is not client_source and value.shape == client_source.shape
             inp = value if hasattr(value, "source") and hasattr(value, "rank") else None
             if inp is not None:
                 assert inp.progress is None and inp.cluster is None
                 assert inp.source is not client_source  # a source reopened from its recipe
                 assert inp.source.shape == client_source.shape
+
+
+def test_block_ranges_cover_the_partition_contiguously():
+    from rankfold.cluster.passes import block_ranges
+
+    for n_blocks, n_tasks in ((1, 6), (5, 6), (6, 6), (61, 6), (100, 12)):
+        ranges = block_ranges(n_blocks, n_tasks)
+        assert ranges[0][0] == 0 and ranges[-1][1] == n_blocks
+        assert all(a < b for a, b in ranges) and all(r[1] == s[0] for r, s in zip(ranges, ranges[1:]))
+        assert len(ranges) == min(n_blocks, n_tasks)
+        sizes = [b - a for a, b in ranges]
+        assert max(sizes) - min(sizes) <= 1
 
 
 # ---------------------------------------------------------------- same answer as serial

@@ -74,12 +74,15 @@ class ClusterSession:
         info = client.scheduler_info()["workers"]
         self.workers = sorted(info)
         self.threads = sum(int(w["nthreads"]) for w in info.values()) or 1
-        self.blas_limits = self._blas_limits(info)
+        self.blas_limits: dict = {}
         self.bytes_moved = 0
         self.tasks = 0
 
-    def _blas_limits(self, info: dict) -> dict:
+    def set_blas_limits(self) -> None:
         """Each host's cores divided among the worker threads it runs (at least 1)."""
+        self.blas_limits = self._blas_limits(self.client.scheduler_info()["workers"])
+
+    def _blas_limits(self, info: dict) -> dict:
         cores = self.client.run(_host_cores)
         threads: dict[str, int] = {}
         host_cores: dict[str, int] = {}
@@ -94,7 +97,12 @@ class ClusterSession:
         from rankfold.cluster.worker import versions
 
         mine = client_versions()
-        theirs = self.client.run(versions)
+        try:
+            theirs = self.client.run(versions)
+        except Exception as exc:  # typically: rankfold is not installed where the workers run
+            raise ClusterError(f"the workers of {self.address} cannot run rankfold's checks "
+                               f"({type(exc).__name__}: {exc}); install rankfold {mine['rankfold']} and the "
+                               "same packages on every worker") from None
         for addr in sorted(theirs):
             diff = [f"{name} {theirs[addr].get(name)} (here {mine[name]})" for name in mine
                     if theirs[addr].get(name) != mine[name]]
@@ -170,6 +178,7 @@ def connect(cluster, source=None, timeout: float | None = None):
                                f"{timeout:g} s; start workers with `dask worker {client.scheduler.address}`") from None
         session = ClusterSession(client, label)
         session.check_versions()
+        session.set_blas_limits()
         if source is not None:
             session.check_source(source)
         yield session
