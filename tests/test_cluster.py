@@ -306,6 +306,18 @@ def test_worker_killed_in_the_middle_of_a_pass(client, make_planted, write_zarr,
     assert victim not in client.run(os.getpid).values()  # the killed process is gone, replaced
 
 
+def test_serial_runs_never_import_dask(planted, write_zarr):
+    """dask and distributed are imported only when a cluster is used (a fresh interpreter)."""
+    path = write_zarr(planted)
+    code = ("import sys, rankfold; rankfold.decompose(sys.argv[1], 2, route='features'); "
+            "rankfold.decompose(sys.argv[1], 2, route='sketch'); "
+            "print(sorted(m for m in sys.modules if m.split('.')[0] in ('dask', 'distributed')))")
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join(p for p in [_src_dir(), os.environ.get("PYTHONPATH")] if p))
+    done = subprocess.run([sys.executable, "-c", code, path], env=env, capture_output=True, text=True, timeout=120)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.strip() == "[]"
+
+
 # ---------------------------------------------------------------- bad input
 
 
