@@ -22,7 +22,7 @@ from rankfold.errors import ClusterError
 from rankfold.routes.common import PassRecord
 from rankfold.sources.base import Partition
 
-TASKS_PER_THREAD = 3
+TASKS_PER_THREAD = 3  # block ranges per worker thread: evens out a slow worker, keeps states few
 
 
 def block_ranges(n_blocks: int, n_tasks: int) -> list[tuple[int, int]]:

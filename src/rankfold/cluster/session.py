@@ -21,7 +21,6 @@ import sys
 from rankfold.errors import ClusterError, UsageError
 
 CONNECT_TIMEOUT = 10.0  # seconds to reach a scheduler and to see its first worker
-TASKS_PER_THREAD = 3  # block ranges per worker thread: balances uneven workers, keeps states few
 MAX_LOCAL_WORKERS = 256
 _LOCAL = re.compile(r"^local:(\d+)$")
 
