@@ -41,7 +41,10 @@ def npy_request(n: int, m: int, limit: int, *, rank: int = 10, samples_as: str =
 
     Per value in flight: two float64 buffers (16 bytes, sources/readahead.py) plus the stored
     bytes mapped while a block is copied (sources/npy.py, NpySource.bytes_per_unit).
+    Without scores unless asked (``scores=True``): the route models are checked on
+    their own, and the scores' costs in the tests of section 4.
     """
+    options.setdefault("scores", False)
     per_value = 16 + 4
     per_unit = {"samples": m * per_value, "features": n * per_value}
     native = "samples" if samples_as == "rows" else "features"
@@ -70,7 +73,8 @@ def test_request_models_a_real_npy(tmp_path):
     np.save(path, np.zeros((30, 7), dtype=np.float32))
     src = open_source(path)
     try:
-        assert plan_request(src, 2, 10 * MB) == npy_request(30, 7, 10 * MB, rank=2, cores=os.cpu_count() or 1)
+        assert plan_request(src, 2, 10 * MB) == npy_request(30, 7, 10 * MB, rank=2, cores=os.cpu_count() or 1,
+                                                            scores=True)
     finally:
         src.close()
 
@@ -213,6 +217,12 @@ ESTIMATE_CASES = [
     ("sketch", {"sketch": "one-pass"}, "rows", ["one-pass sketch"]),
     ("sketch", {}, "columns", ["power iteration", "power iteration", "Rayleigh-Ritz", "loadings"]),
     ("sketch", {"sketch": "one-pass"}, "columns", ["one-pass sketch", "loadings"]),
+    # With scores (the default): one more pass where the route has none to spare (routes/scores.py).
+    ("features", {"scores": True}, "rows", ["feature Gram", "scores"]),
+    ("sketch", {"scores": True}, "rows", ["column moments", "power iteration", "power iteration", "Rayleigh-Ritz"]),
+    ("sketch", {"sketch": "one-pass", "scores": True}, "rows", ["one-pass sketch", "scores"]),
+    ("samples", {"scores": True}, "columns", ["sample Gram", "loadings"]),
+    ("memory", {"scores": True}, "rows", ["load"]),
 ]
 
 
@@ -221,6 +231,7 @@ def test_planned_passes_and_bytes_are_what_the_run_does(planted, write_npy, rout
     # reference: the run's own record (attrs["passes"], counted block by block in
     # routes/common.run_pass) against the plan made before reading (attrs["plan"]).
     path = write_npy(planted, samples_as)
+    options = {"scores": False, **options}
     result = rankfold.decompose(path, 3, route=route, samples_as=samples_as, speed=SPEED,
                                 memory_limit=20 * MB, **options)
     assert [p["name"] for p in result.attrs["passes"]] == names
@@ -248,7 +259,8 @@ def test_planned_block_size_is_what_the_run_reads(write_table, fmt, route):
     finally:
         src.close()
     plans = []
-    result = rankfold.decompose(path, 2, route=route, memory_limit=limit, speed=SPEED, on_plan=plans.append)
+    result = rankfold.decompose(path, 2, route=route, memory_limit=limit, speed=SPEED, on_plan=plans.append,
+                                scores=False)
     planned = plans[0].estimate.block_units
     read = max(p["largest_block"] for p in result.attrs["passes"])
     assert planned == read, (f"plan says blocks of {planned} samples, the run read blocks of {read}: "
