@@ -21,8 +21,8 @@ import pytest
 
 import rankfold
 from rankfold.errors import ClusterError, DataError, UsageError
-from rankfold.folds import (ColumnMoments, CovarianceProduct, FeatureGram, FeatureProjection, GramProduct,
-                            SampleGram, StreamingSketch, tree_merge)
+from rankfold.folds import (ColumnMoments, ColumnScores, CovarianceProduct, FeatureGram, FeatureProjection,
+                            GramProduct, SampleGram, StreamingSketch, tree_merge)
 
 EXACT = 1e-12
 
@@ -73,7 +73,9 @@ STATE_CASES = {
     "GramProduct": lambda t: GramProduct(np.random.default_rng(3).standard_normal((t.shape[1], 4)),
                                          t.shape[0], True),
     "FeatureProjection": lambda t: FeatureProjection(np.random.default_rng(4).standard_normal((t.shape[1], 3)),
-                                                     t.mean(axis=1), t.std(axis=1, ddof=1)),
+                                                     t.mean(axis=1), t.std(axis=1, ddof=1), scores=True),
+    "ColumnScores": lambda t: ColumnScores(np.random.default_rng(5).standard_normal((t.shape[0], 3)),
+                                           t.mean(axis=1), t.std(axis=1, ddof=1), t.shape[1]),
 }
 
 
@@ -96,7 +98,10 @@ def _reference(name: str, t: np.ndarray, empty) -> dict:
         ref.update({"gram": z.T @ z} if name == "SampleGram" else {"product": z.T @ (z @ empty.basis)})
         return ref
     z = (t - empty.center[:, None]) / empty.scale[:, None]
-    return {"loadings": z @ empty.weights}
+    if name == "ColumnScores":
+        return {"scores": z.T @ empty.loadings, "sumsq": np.einsum("ij,ij->j", z, z)}
+    loadings = z @ empty.weights
+    return {"loadings": loadings, "sample_sumsq": np.einsum("ij,ij->j", z, z), "sample_product": z.T @ loadings}
 
 
 @pytest.mark.parametrize("name", sorted(STATE_CASES))

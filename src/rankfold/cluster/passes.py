@@ -12,6 +12,7 @@ answer equals a serial pass to rounding (about 1e-15 relative, merge order).
 
 from __future__ import annotations
 
+import dataclasses
 import time
 import uuid
 
@@ -22,6 +23,9 @@ from rankfold.errors import ClusterError
 from rankfold.routes.common import PassRecord
 from rankfold.sources.base import Partition
 
+# Attributes of feature-block states used in messages only: not shipped (a worker takes
+# the names from its own source), restored on the merged state.
+MESSAGE_ONLY = ("feature_names", "source_path")
 TASKS_PER_THREAD = 3  # block ranges per worker thread: evens out a slow worker, keeps states few
 
 
@@ -35,9 +39,19 @@ def block_ranges(n_blocks: int, n_tasks: int) -> list[tuple[int, int]]:
 def cluster_pass(name: str, inp, partition: Partition, state, prepare) -> tuple[object, PassRecord]:
     """Run one pass of ``partition`` on ``inp.cluster``; same contract as ``run_pass``.
 
-    ``state`` is the empty template; its class, its bytes and ``prepare`` are
-    shipped with each task.  Returns the merged state and the pass record.
+    ``state`` is the empty template; its class, its bytes, its attributes that
+    are not serialized (lookup tables, widths) and ``prepare`` are shipped with
+    each task.  A state that calls back into this process while folding runs
+    here instead, serially.  Returns the merged state and the pass record.
     """
+    extras = {k: v for k, v in vars(state).items() if k not in type(state)._fields and k not in MESSAGE_ONLY}
+    if any(callable(v) for v in extras.values()):
+        # The state hands rows to a callback in this process as it folds (scores written
+        # while they are computed, the randomized route's captured thin product): such a
+        # pass runs here, serially, on the same blocks.
+        from rankfold.routes.common import run_pass
+
+        return run_pass(name, dataclasses.replace(inp, cluster=None), partition, state, prepare)
     from distributed import as_completed
 
     session = inp.cluster
@@ -48,7 +62,7 @@ def cluster_pass(name: str, inp, partition: Partition, state, prepare) -> tuple[
     cls = type(state)
     template = pack_state(state)
     names = {"feature_names": getattr(state, "feature_names", None) is not None,
-             "source_path": getattr(state, "source_path", None)}
+             "source_path": getattr(state, "source_path", None), "extras": extras}
     shipped = len(template) + len(cloudpickle.dumps(prepare)) + len(cloudpickle.dumps(spec))
     ranges = block_ranges(len(partition), TASKS_PER_THREAD * session.threads)
     key = f"rankfold-{name.replace(' ', '-')}-{uuid.uuid4().hex[:8]}"
@@ -95,7 +109,7 @@ def cluster_pass(name: str, inp, partition: Partition, state, prepare) -> tuple[
     # result once to its merge or to us (states have the same size whatever their range).
     session.bytes_moved += len(folds) * shipped + (len(folds) + len(merges)) * len(payload)
     merged = cls.from_bytes(payload)
-    for attr in ("feature_names", "source_path"):
+    for attr in (*MESSAGE_ONLY, *extras):
         if getattr(state, attr, None) is not None:
             setattr(merged, attr, getattr(state, attr))
     record = PassRecord(name, partition.axis, len(partition), partition.largest, read, time.perf_counter() - t0)

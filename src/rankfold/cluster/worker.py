@@ -40,8 +40,9 @@ def fold_range(spec, axis: str, bounds: tuple, cls, template: bytes, prepare, li
                names: dict) -> tuple[bytes, int, int]:
     """Fold blocks ``bounds`` of the source into a fresh state; return (state bytes, blocks, bytes read).
 
-    ``names`` restores the message-only attributes of feature-block states
-    (``feature_names``, ``source_path``), which are not serialized.
+    ``names`` restores what ``to_bytes`` does not carry: the message-only
+    attributes of feature-block states (``feature_names``, ``source_path``)
+    and, under ``"extras"``, other plain attributes (lookup tables, widths).
     """
     from threadpoolctl import threadpool_limits
 
@@ -51,6 +52,8 @@ def fold_range(spec, axis: str, bounds: tuple, cls, template: bytes, prepare, li
         state.feature_names = source.feature_names
     if names.get("source_path"):
         state.source_path = names["source_path"]
+    for attr, value in names.get("extras", {}).items():
+        setattr(state, attr, value)
     itemsize = source.storage_dtype.itemsize
     read = 0
     with threadpool_limits(limits=blas_limit(limits), user_api="blas"):

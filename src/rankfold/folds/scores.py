@@ -36,6 +36,8 @@ class RowScores(FoldState):
     """
 
     _fields = ("loadings", "center", "scale")
+    sink = None  # not serialized (nor the column map): set them again after from_bytes
+    columns = None
 
     def __init__(self, loadings, center, scale, sink, columns=None):
         self.loadings, self.center, self.scale = loadings, center, scale
@@ -76,6 +78,7 @@ class ColumnScores(FoldState):
     """
 
     _fields = ("loadings", "center", "scale", "scores", "sumsq")
+    lookup = None  # not serialized: a state rebuilt by from_bytes reads features in source order
 
     def __init__(self, loadings, center, scale, n_samples: int, rows=None):
         self.loadings, self.center, self.scale = loadings, center, scale

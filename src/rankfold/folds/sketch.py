@@ -49,6 +49,8 @@ class CovarianceProduct(FoldState):
     """
 
     _fields = ("basis", "center", "scale", "product")
+    capture = None  # not serialized: a state rebuilt by from_bytes captures nothing
+    capture_width = 0
 
     def __init__(self, basis: np.ndarray, center: np.ndarray, scale: np.ndarray, capture=None,
                  capture_width: int = 0):
