@@ -105,7 +105,7 @@ def test_randomized_route_takes_no_extra_pass_and_scratch_equals_memory(make_pla
     tight = rankfold.decompose(path, RANK, route="sketch", out=str(tmp_path / "b.zarr"), memory_limit=1_500_000,
                                scores_dtype="float64")
     names = [p["name"] for p in tight.attrs["passes"]]
-    assert names == ["column moments", "power iteration", "power iteration", "Rayleigh-Ritz"]
+    assert names == ["moments and power iteration", "power iteration", "Rayleigh-Ritz"]
     assert min(p["blocks"] for p in tight.attrs["passes"]) >= 3
     np.testing.assert_allclose(tight.scores[:], roomy.scores[:], rtol=0, atol=1e-9 * np.abs(roomy.scores[:]).max())
     np.testing.assert_array_equal(tight.flagged[:], roomy.flagged[:])

@@ -158,7 +158,8 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
         chosen = make_plan(plan_request(src, rank, limit, route=route, accuracy=accuracy, oversample=oversample,
                                         power_iterations=power_iterations, sketch=sketch, missing=missing,
                                         standardize=standardize, scores=bool(scores),
-                                        scratch_free=_free_disk(out)), speed or machine_speed())
+                                        scratch_free=_free_disk(out), outputs_held=out is None),
+                           speed or machine_speed())
         if on_plan is not None:
             on_plan(chosen)
         params = {"rank": int(rank), "standardize": bool(standardize), "missing": missing,
@@ -174,7 +175,8 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
             with _cluster_session(cluster, src) as session:
                 inp = RouteInput(src, int(rank), bool(standardize), missing, limit, progress, int(oversample),
                                  int(power_iterations), sketch, int(seed), scores=bool(scores),
-                                 scratch=writer.scratch_folder() if writer else None, cluster=session)
+                                 scratch=writer.scratch_folder() if writer else None, outputs_held=writer is None,
+                                 cluster=session)
                 return _run(inp, chosen, params, writer, scores_dtype, float(flag_threshold))
         except BaseException:
             if writer is not None:

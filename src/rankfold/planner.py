@@ -21,7 +21,7 @@ from rankfold.errors import MemoryLimitError
 from rankfold.machine import MachineSpeed
 from rankfold.memory import format_bytes
 from rankfold.routes import features, memory, samples, sketch
-from rankfold.sample_outputs import TallProduct, buffer_bytes, scratch_chunk_bytes, writer_bytes
+from rankfold.sample_outputs import TallProduct, buffer_bytes, held_bytes, scratch_chunk_bytes, writer_bytes
 
 EXACT = ("memory", "features", "samples")
 # Above this many values an SVD of the whole table costs more than it is worth
@@ -60,6 +60,7 @@ class PlanRequest:
     standardize: bool = False
     scores: bool = True
     scratch_free: int | None = None  # free bytes where scratch arrays would go (None: not checked)
+    outputs_held: bool = False  # per-sample outputs returned in memory rather than written to a store
 
 
 @dataclass(frozen=True)
@@ -131,7 +132,7 @@ def _estimate(route: str, req: PlanRequest, speed: MachineSpeed) -> RouteEstimat
     read_pass = req.table_bytes / speed.read_bytes_per_s
     scratch = 0
     gemm = speed.gemm_flops_per_s
-    outputs = buffer_bytes(n, k) if req.scores else 0
+    outputs = (buffer_bytes(n, k) + (held_bytes(n, k) if req.outputs_held else 0)) if req.scores else 0
     if route == "memory":
         fixed = memory.fixed_bytes(n, m, k) + outputs
         flops = 4.0 * n * m * min(n, m) + 3.0 * n * m
@@ -163,6 +164,10 @@ def _estimate(route: str, req: PlanRequest, speed: MachineSpeed) -> RouteEstimat
         else:
             per_pass = [3.0 * n * m] + [apply] * req.power_iterations
             per_pass.append(4.0 * n * m * (width + sketch.TEST_VECTORS))
+            if axis == "samples" and sketch.fuses_moments(req.standardize, req.missing, req.power_iterations,
+                                                          req.sketch):
+                per_pass = per_pass[1:]  # the moments ride along with the first power iteration
+                passes -= 1
             if axis == "features":
                 per_pass[0] = apply  # no moments pass; the last pass recovers loadings instead
                 per_pass.append(2.0 * n * m * k)

@@ -116,7 +116,8 @@ def project(result, source, *, out=None, format: str = "zarr", memory_limit=None
     src, positions = _open_matching(os.fspath(source), res, params, id_column, array)
     try:
         n, k = src.n_samples, res.rank
-        inp = RouteInput(src, k, bool(params.get("standardize")), params.get("missing", "refuse"), limit, progress)
+        inp = RouteInput(src, k, bool(params.get("standardize")), params.get("missing", "refuse"), limit, progress,
+                         outputs_held=out is None)
         fill = inp.missing == "fill-mean"
         axis = src.native_axis
 

@@ -63,6 +63,11 @@ def buffer_bytes(n_samples: int, rank: int) -> int:
     return 2 * chunk_rows(n_samples, rank) * (rank + 2) * 8 + 2 * n_samples * 8
 
 
+def held_bytes(n_samples: int, rank: int) -> int:
+    """Per-sample outputs kept in memory (a result without a store): float64 scores, residuals, flags."""
+    return n_samples * (rank + 2) * 8 + n_samples
+
+
 def scratch_chunk_bytes(memory_limit: int) -> int:
     """Chunk size of a scratch array: a small share of the ceiling, so its writer fits beside the blocks."""
     return max(1 << 16, min(CHUNK_BYTES, memory_limit // 16))

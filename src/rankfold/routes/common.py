@@ -11,7 +11,7 @@ import numpy as np
 
 from rankfold.errors import DataError
 from rankfold.linalg import sign_flips
-from rankfold.sample_outputs import SampleParts, buffer_bytes
+from rankfold.sample_outputs import SampleParts, buffer_bytes, held_bytes
 from rankfold.sources.base import Partition, Source
 from rankfold.sources.readahead import iter_blocks
 
@@ -34,6 +34,7 @@ class RouteInput:
     seed: int = 0
     scores: bool = True  # whether per-sample outputs will be written (routes keep what they need)
     scratch: str | None = None  # folder for a tall intermediate that exceeds memory (created on demand)
+    outputs_held: bool = False  # per-sample outputs returned in memory (no result store): counted too
     cluster: object | None = None  # a rankfold.cluster.ClusterSession: passes run as cluster tasks
 
     def __getstate__(self) -> dict:
@@ -109,7 +110,10 @@ def run_pass(name: str, inp: RouteInput, partition: Partition, state,
 
 def output_bytes(inp: RouteInput) -> int:
     """Memory the per-sample stage holds beside a route's state (0 without scores)."""
-    return buffer_bytes(inp.source.n_samples, inp.rank) if inp.scores else 0
+    if not inp.scores:
+        return 0
+    n = inp.source.n_samples
+    return buffer_bytes(n, inp.rank) + (held_bytes(n, inp.rank) if inp.outputs_held else 0)
 
 
 def scratch_folder(inp: RouteInput) -> str:

@@ -13,7 +13,7 @@ import numpy as np
 from rankfold.folds import ColumnScores, RowScores
 from rankfold.memory import block_budget
 from rankfold.routes.common import Decomposition, RouteInput, run_pass
-from rankfold.sample_outputs import RowWriter, buffer_bytes, chunk_rows, residuals
+from rankfold.sample_outputs import RowWriter, buffer_bytes, chunk_rows, held_bytes, residuals
 
 NAME = "scores"
 
@@ -75,14 +75,18 @@ def project(inp: RouteInput, loadings, center, scale, sink, passes: list, label:
     if prepare is None:
         def prepare(block, start):
             return block
+    if inp.outputs_held:
+        loadings_bytes = loadings.nbytes + held_bytes(n, k)  # the arrays the sink fills are in memory
+    else:
+        loadings_bytes = loadings.nbytes
     if (axis or source.native_axis) == "samples":
-        fixed = buffer_bytes(n, k) + loadings.nbytes + source.fixed_read_bytes("samples")
+        fixed = buffer_bytes(n, k) + loadings_bytes + source.fixed_read_bytes("samples")
         budget = block_budget(inp.memory_limit, fixed, source.min_block_bytes("samples"), "the scores pass")
         state = RowScores(loadings, center, scale, sink, positions)
         _, record = run_pass(label, inp, source.partition("samples", budget), state, prepare)
         passes.append(record)
         return
-    fixed = n * (k + 3) * 8 + buffer_bytes(n, k) + loadings.nbytes + source.fixed_read_bytes("features")
+    fixed = n * (k + 3) * 8 + buffer_bytes(n, k) + loadings_bytes + source.fixed_read_bytes("features")
     budget = block_budget(inp.memory_limit, fixed, source.min_block_bytes("features"), "the scores pass")
     state = ColumnScores(loadings, center, scale, n, positions)
     state, record = run_pass(label, inp, source.partition("features", budget), state, prepare)

@@ -2,7 +2,8 @@
 
 The operator is the covariance: ``C = Xc^T Xc`` in feature space when samples
 are stored as rows (blocks of whole samples, centered and scaled exactly with
-the column moments of a first pass), or ``G = Xc Xc^T`` in sample space when
+the global column moments, learnt during the first power iteration or, when the
+spreads or fill values are needed first, in a pass of their own), or ``G = Xc Xc^T`` in sample space when
 samples are stored as columns (blocks of whole features, each centered on its
 own; the loadings then take one more pass).  Each application of the operator
 to a thin basis of width ``w = rank + oversample`` is one pass
@@ -14,8 +15,9 @@ subspace
     Halko, Martinsson and Tropp (2011), Algorithm 4.4: ``Q = orth(Omega)``,
     then ``power_iterations`` times ``Q = orth(C Q)`` (one pass each, QR
     re-normalization in between), then a Rayleigh-Ritz pass.  Passes:
-    ``1 + power_iterations + 1`` (rows; the first reads the moments) or
-    ``power_iterations + 1 + 1`` (columns; the last recovers loadings).
+    ``power_iterations + 1`` (rows; one more for the moments when
+    :func:`fuses_moments` says no) or ``power_iterations + 1 + 1`` (columns;
+    the last recovers loadings).
 block Krylov
     Musco and Musco (2015): the Rayleigh-Ritz step uses the whole Krylov
     space ``[Q0, C Q0, ..., C^q Q0]`` (width ``w (q + 1)``): more accurate for
@@ -56,8 +58,23 @@ def basis_width(rank: int, oversample: int, power_iterations: int, kind: str) ->
 
 
 def passes(power_iterations: int, kind: str) -> int:
-    """Reads of the data: moments or loadings, the iterations, the final product."""
+    """Reads of the data at most: moments or loadings, the iterations, the final product.
+
+    The planner subtracts the moments pass where :func:`fuses_moments` applies.
+    """
     return 1 if kind == "one-pass" else power_iterations + 2
+
+
+def fuses_moments(standardize: bool, missing: str, power_iterations: int, kind: str) -> bool:
+    """Whether the rows orientation folds the column moments into the first power iteration.
+
+    :class:`~rankfold.folds.StreamingSketch` folds ``Xc^T Xc Q0`` exactly
+    (Chan et al.'s update) while it learns the means, so the separate moments
+    pass is saved -- unless the spreads are needed before the first product
+    (``standardize``) or missing values must be filled with means not yet
+    known (``fill-mean``), or there is no power iteration to fuse with.
+    """
+    return not standardize and missing != "fill-mean" and power_iterations >= 1 and kind != "one-pass"
 
 
 def fixed_bytes(operator_size: int, n_features: int, rank: int, oversample: int = 10,
@@ -105,16 +122,18 @@ def tall_fits_in_memory(n: int, width: int, memory_limit: int) -> bool:
     return TallProduct.bytes_needed(n, width) <= memory_limit // 4
 
 
-def _iterate(inp: RouteInput, omega: np.ndarray, tests: np.ndarray, apply) -> tuple:
+def _iterate(inp: RouteInput, omega: np.ndarray, tests: np.ndarray, apply, first=None) -> tuple:
     """Subspace or block Krylov iteration; returns (basis, product of basis, product of tests).
 
     ``apply(q, label, last)`` applies the operator in one pass; ``last`` marks
     the Rayleigh-Ritz pass, whose thin product the rows orientation keeps.
+    ``first``, when given, is the operator applied to ``orthonormalize(omega)``
+    already (folded together with the moments).
     """
     q = orthonormalize(omega)
     krylov = [q]
-    for _ in range(inp.power_iterations):
-        z = apply(q, "power iteration", False)
+    for i in range(inp.power_iterations):
+        z = first if i == 0 and first is not None else apply(q, "power iteration", False)
         q = orthonormalize(z, np.hstack(krylov) if inp.sketch == "krylov" else None)
         if q.shape[1] == 0:
             break  # the Krylov space spans everything reachable: more passes add nothing
@@ -170,6 +189,13 @@ def _run_rows(inp: RouteInput, partition, omega, tests, tall_in_memory) -> Decom
         residual = y_tests - vectors @ (values[:, None] * (vectors.T @ tests))
         basis_residual, basis = None, omega
         center, scale, total = state.mean, np.ones(m), float(state.m2.sum()) / (n - 1)
+    elif fuses_moments(inp.standardize, inp.missing, inp.power_iterations, inp.sketch):
+        # One pass learns the means and applies the centered covariance to Q0 = orth(Omega).
+        state, record = run_pass("moments and power iteration", inp, partition,
+                                 StreamingSketch(orthonormalize(omega)), check)
+        passes_done.append(record)
+        center, scale, total = state.mean, np.ones(m), float(state.m2.sum()) / (n - 1)
+        first = state.product
     else:
         moments, record = run_pass("column moments", inp, partition, ColumnMoments(m), check)
         passes_done.append(record)
@@ -187,7 +213,9 @@ def _run_rows(inp: RouteInput, partition, omega, tests, tall_in_memory) -> Decom
                 raise DataError(f"{source.path}: column(s) {names} are constant, so they have no correlation "
                                 "to scale; leave them out, or drop --standardize to analyse covariances")
             total = float(m)
+        first = None
 
+    if inp.sketch != "one-pass":
         def apply(basis, label, last):
             state = CovarianceProduct(basis, center, scale)
             if last and tall_in_memory is not None:
@@ -199,7 +227,7 @@ def _run_rows(inp: RouteInput, partition, omega, tests, tall_in_memory) -> Decom
             passes_done.append(rec)
             return state.product
 
-        basis, product, product_tests = _iterate(inp, omega, tests, apply)
+        basis, product, product_tests = _iterate(inp, omega, tests, apply, first)
         values, vectors, parts.coefficients = rayleigh_ritz(basis, product, inp.rank, coefficients=True)
         if parts.tall is None:
             parts.coefficients = None
