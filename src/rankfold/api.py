@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import datetime
 import os
 import platform
@@ -39,7 +40,7 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
               power_iterations: int = 2, sketch: str = "subspace", scores: bool = True,
               scores_dtype: str = "float32", flag_threshold: float = DEFAULT_FLAG_THRESHOLD,
               on_plan=None, speed: MachineSpeed | None = None, checkpoint_every: float = DEFAULT_EVERY,
-              restart: bool = False, on_resume=None) -> Result:
+              restart: bool = False, on_resume=None, cluster=None) -> Result:
     """Leading principal components of a table, streamed in blocks within a memory ceiling.
 
     Parameters
@@ -114,6 +115,12 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
     on_resume : callable, optional
         Called with a one-line message ("resuming ...: pass 2 of 4 (feature
         Gram), block 342 of 1,000") when a checkpoint is resumed.
+    cluster : distributed.Client or str, optional
+        Run every pass as tasks on a dask.distributed cluster: a client, a
+        scheduler address (``"tcp://host:8786"``), or ``"local:N"`` for N
+        worker processes on this machine (started and closed here).  Workers
+        open the source themselves, so it must be a path or URL they can all
+        read.  The in-memory route runs in this process.  See docs/cluster.md.
 
     Returns
     -------
@@ -155,6 +162,10 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
     if isinstance(checkpoint_every, bool) or not isinstance(checkpoint_every, (int, float, np.integer, np.floating)) \
             or not np.isfinite(checkpoint_every) or checkpoint_every < 0:
         raise UsageError(f"checkpoint_every must be a number of seconds, 0 or more; got {checkpoint_every!r}")
+    if cluster is not None:
+        from rankfold.cluster import check_cluster_argument
+
+        check_cluster_argument(cluster)
     limit = parse_memory(memory_limit) if memory_limit is not None else None
     if out is not None:
         out = os.fspath(out)
@@ -212,11 +223,11 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
         # resumed run replaces what a killed one left (the checkpoint's lock keeps runs apart).
         writer = ResultWriter(out, overwrite, tag="resumable" if ckpt else None) if out is not None else None
         try:
-            inp = RouteInput(src, int(rank), bool(standardize), missing, limit, progress, int(oversample),
-                             int(power_iterations), sketch, int(seed), scores=bool(scores),
-                             scratch=writer.scratch_folder() if writer else None, outputs_held=writer is None,
-                             checkpoint=ckpt)
-            with stopping.stop_on_signals():
+            with _cluster_session(cluster, src) as session, stopping.stop_on_signals():
+                inp = RouteInput(src, int(rank), bool(standardize), missing, limit, progress, int(oversample),
+                                 int(power_iterations), sketch, int(seed), scores=bool(scores),
+                                 scratch=writer.scratch_folder() if writer else None, outputs_held=writer is None,
+                                 checkpoint=ckpt, cluster=session)
                 return _run(inp, chosen, params, writer, scores_dtype, float(flag_threshold))
         except BaseException:
             if writer is not None:
@@ -258,6 +269,8 @@ def _run(inp: RouteInput, chosen: Plan, params: dict, writer: ResultWriter | Non
                      "passes": chosen.estimate.passes, "bytes_read": chosen.estimate.bytes_read}
     if flag is not None:
         attrs["residual_flag"] = flag.as_dict()
+    if inp.cluster is not None:
+        attrs["cluster"] = inp.cluster.summary()
     if writer is None:
         return Result(None, dec.loadings, dec.variance, dec.variance / dec.total_variance, dec.center,
                       dec.scale, np.asarray(src.feature_names), per_sample.get("scores"), sample_ids, attrs,
@@ -311,6 +324,19 @@ def _free_disk(out) -> int | None:
         return shutil.disk_usage(os.path.dirname(os.path.abspath(out))).free
     except OSError:
         return None
+
+
+def _cluster_session(cluster, src: Source):
+    """A checked cluster session for the run, or a null context for serial runs.
+
+    The in-memory route makes no pass (one LAPACK call in this process), but the
+    cluster is still connected and checked, so a bad ``cluster=`` never passes silently.
+    """
+    if cluster is None:
+        return contextlib.nullcontext()
+    from rankfold.cluster import connect
+
+    return connect(cluster, src)
 
 
 def plan_request(src: Source, rank: int, limit: int, **options) -> PlanRequest:

@@ -47,6 +47,7 @@ def _parser() -> argparse.ArgumentParser:
     d.add_argument("--restart", action="store_true",
                    help="discard a checkpoint left by an earlier run of this command and start over")
     d.add_argument("--quiet", "-q", action="store_true", help="print nothing but errors")
+    _cluster_option(d)
 
     p = sub.add_parser("plan", help="say which route would run, its passes, memory and time, without reading data")
     p.add_argument("source", metavar="SOURCE", help="Parquet file or folder, Zarr array or group, or .npy file")
@@ -105,6 +106,12 @@ def _source_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--array", metavar="NAME", help="array inside a Zarr group")
 
 
+def _cluster_option(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--cluster", metavar="ADDRESS|local:N",
+                   help="run the passes on a dask.distributed cluster: a scheduler address "
+                        "(tcp://host:8786) or local:N for N worker processes on this machine")
+
+
 def _planning_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--route", choices=("auto", "memory", "features", "samples", "sketch"), default="auto",
                    help="force a route (default: the planner picks the fastest that fits)")
@@ -148,6 +155,7 @@ def _decompose(args) -> int:
                            overwrite=args.overwrite, progress=monitor, on_plan=monitor.on_plan,
                            scores=args.scores, scores_dtype=args.scores_dtype, flag_threshold=args.flag_threshold,
                            checkpoint_every=args.checkpoint_every, restart=args.restart, on_resume=show_resume,
+                           cluster=args.cluster,
                            **_common(args))
         lines = describe_result(result)
         monitor.finished(lines)

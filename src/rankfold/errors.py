@@ -12,6 +12,8 @@ Exit codes
 5  output: the result path exists or cannot be written
 6  checkpoint: a checkpoint beside the result belongs to another run (changed
    source or parameters) or is in use or unreadable
+7  cluster: the scheduler cannot be reached, workers cannot read the data, or their
+   versions differ from this process's
 130 interrupted: stopped by SIGINT or SIGTERM after saving a checkpoint
 """
 
@@ -69,3 +71,9 @@ class Interrupted(RankfoldError):
     """The run stopped on SIGINT or SIGTERM; the message says how to resume."""
 
     exit_code = 130
+
+
+class ClusterError(RankfoldError):
+    """The dask cluster cannot run the job: unreachable, mismatched, or blind to the data."""
+
+    exit_code = 7

@@ -34,6 +34,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from rankfold.errors import OutputError
+from rankfold.sources.location import is_url, join, local_or_url, parent, url_fs
 
 FORMAT_VERSION = 1
 FORMAT_KEY = "rankfold_format"
@@ -118,7 +119,8 @@ def open_result(path: str) -> Result:
     """
     import zarr
 
-    if not os.path.isdir(path):
+    path = local_or_url(path)
+    if not _isdir(path):
         raise OutputError(f"{path}: no such result folder")
     try:
         group = zarr.open_group(path, mode="r")
@@ -152,6 +154,16 @@ def check_output_path(out: str, overwrite: bool) -> None:
     ``overwrite`` replaces only a previous rankfold result: a mistyped ``--out``
     must not delete a data folder.
     """
+    out = local_or_url(out)
+    if is_url(out):
+        fs, p = url_fs(out)
+        if fs.exists(p):
+            if not overwrite:
+                raise OutputError(f"{out}: already exists; choose another --out or pass --overwrite to replace it")
+            if not _is_result(out):
+                raise OutputError(f"{out}: exists and is not a rankfold result, so --overwrite will not "
+                                  "replace it; remove it yourself or choose another --out")
+        return  # object stores have no folders to check; a write failure is reported when it happens
     if os.path.lexists(out):
         if not overwrite:
             raise OutputError(f"{out}: already exists; choose another --out or pass --overwrite to replace it")
@@ -169,6 +181,14 @@ def _is_result(path: str) -> bool:
     """Whether ``path`` is a folder holding a rankfold result (complete or not)."""
     import json
 
+    if is_url(path):
+        fs, p = url_fs(path)
+        try:
+            with fs.open(p.rstrip("/") + "/zarr.json", "rb") as fh:
+                attrs = json.load(fh).get("attributes", {})
+        except (OSError, ValueError):
+            return False
+        return FORMAT_KEY in attrs or "route" in attrs
     meta = os.path.join(path, "zarr.json")
     if not os.path.isdir(path) or not os.path.isfile(meta):
         return False
@@ -193,6 +213,7 @@ class ResultWriter:
                  checked: bool = True, tag: str | None = None):
         import zarr
 
+        out = local_or_url(out)  # file:// gets the local rename, atomic
         if checked:
             check_output_path(out, overwrite)
         self.out, self.overwrite, self.marker, self.checked = out, overwrite, marker, checked
@@ -200,8 +221,8 @@ class ResultWriter:
         # ``tag`` instead (its checkpoint lock keeps runs apart) so that it replaces what a
         # killed run left under the same name.
         self.tag = tag or str(os.getpid())
-        parent, name = os.path.split(os.path.abspath(out))
-        self.tmp = os.path.join(parent, f".{name}.partial-{self.tag}")
+        parent, name = _split(out)
+        self.tmp = join(parent, f".{name}.partial-{self.tag}")
         _remove(self.tmp)
         _remove(self.scratch_folder())
         try:
@@ -212,8 +233,8 @@ class ResultWriter:
 
     def scratch_folder(self) -> str:
         """A folder beside the output for scratch arrays, removed by commit or abandon."""
-        parent, name = os.path.split(os.path.abspath(self.out))
-        return os.path.join(parent, f".{name}.scratch-{self.tag}")
+        parent, name = _split(self.out)
+        return join(parent, f".{name}.scratch-{self.tag}")
 
     def create(self, name: str, shape: tuple, dtype, dims: tuple, chunks: tuple):
         """An empty array to be filled in whole chunks."""
@@ -229,19 +250,19 @@ class ResultWriter:
     def commit(self, attrs: dict) -> None:
         """Write the attributes, mark the store complete, and move it to its name."""
         out = self.out
-        parent, name = os.path.split(os.path.abspath(out))
+        parent, name = _split(out)
         self.group.attrs.update(attrs)
         key, version = self.marker
         self.group.attrs[key] = version  # written last: marks the store complete
-        if os.path.exists(out):
+        if _exists(out):
             if self.checked:
                 check_output_path(out, self.overwrite)
-            trash = os.path.join(parent, f".{name}.replaced-{os.getpid()}")
-            os.rename(out, trash)
-            os.rename(self.tmp, out)
+            trash = join(parent, f".{name}.replaced-{os.getpid()}")
+            _rename(out, trash)
+            _rename(self.tmp, out)
             _remove(trash)
         else:
-            os.rename(self.tmp, out)
+            _rename(self.tmp, out)
         _remove(self.scratch_folder())
 
     def abandon(self) -> None:
@@ -268,8 +289,45 @@ def write_result(out: str, arrays: dict, attrs: dict, overwrite: bool) -> None:
         writer.commit(attrs)
 
 
+# Local paths use plain os calls (a rename within a folder is atomic); fsspec URLs use
+# the URL's filesystem: on file:// and memory:// a move is a rename, on object stores
+# (s3://, gs://) a copy then a delete, so there the complete-store marker written last
+# (FORMAT_KEY) is what tells a finished store from an interrupted one.
+def _split(out: str) -> tuple[str, str]:
+    if is_url(out):
+        return parent(out), out.rstrip("/").rsplit("/", 1)[1]
+    return os.path.split(os.path.abspath(out))
+
+
+def _exists(path: str) -> bool:
+    if is_url(path):
+        fs, p = url_fs(path)
+        return fs.exists(p)
+    return os.path.exists(path)
+
+
+def _isdir(path: str) -> bool:
+    if is_url(path):
+        fs, p = url_fs(path)
+        return fs.isdir(p)
+    return os.path.isdir(path)
+
+
+def _rename(src: str, dst: str) -> None:
+    if is_url(src):
+        fs, p = url_fs(src)
+        fs.mv(p, url_fs(dst)[1], recursive=True)
+    else:
+        os.rename(src, dst)
+
+
 def _remove(path: str) -> None:
     """Delete a folder tree or a file, whichever ``path`` is; ignore a missing one."""
+    if is_url(path):
+        fs, p = url_fs(path)
+        if fs.exists(p):
+            fs.rm(p, recursive=True)
+        return
     if os.path.isdir(path) and not os.path.islink(path):
         shutil.rmtree(path, ignore_errors=True)
     elif os.path.lexists(path):

@@ -37,6 +37,8 @@ class RowScores(FoldState):
 
     _fields = ("loadings", "center", "scale")
     resumable = False  # rows go to the sink as they are folded (see FoldState.resumable)
+    sink = None  # not serialized (nor the column map): set them again after from_bytes
+    columns = None
 
     def __init__(self, loadings, center, scale, sink, columns=None):
         self.loadings, self.center, self.scale = loadings, center, scale

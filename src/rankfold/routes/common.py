@@ -39,6 +39,12 @@ class RouteInput:
     scratch: str | None = None  # folder for a tall intermediate that exceeds memory (created on demand)
     outputs_held: bool = False  # per-sample outputs returned in memory (no result store): counted too
     checkpoint: Checkpointer | None = None  # saves and restores pass states (rankfold.checkpoint)
+    cluster: object | None = None  # a rankfold.cluster.ClusterSession: passes run as cluster tasks
+
+    def __getstate__(self) -> dict:
+        # Pickled into cluster tasks (inside prepare closures): workers get the parameters
+        # only; the progress callback and the cluster handle belong to the client.
+        return {**self.__dict__, "progress": None, "cluster": None, "checkpoint": None}
 
 
 @dataclass
@@ -96,6 +102,10 @@ def run_pass(name: str, inp: RouteInput, partition: Partition, state,
     SIGINT or SIGTERM (:mod:`rankfold.stopping`) saves the state and raises
     :class:`~rankfold.errors.Interrupted`.
     """
+    if inp.cluster is not None:
+        from rankfold.cluster.passes import cluster_pass
+
+        return cluster_pass(name, inp, partition, state, prepare)
     source = inp.source
     source.check_unchanged(name)  # a table rewritten between passes would mix two tables
     total = len(partition)

@@ -7,11 +7,14 @@ per format; ``readahead`` overlaps reading with arithmetic.
 from __future__ import annotations
 
 import os
+import uuid
 
 from rankfold.errors import SourceError, UsageError
 from rankfold.sources.base import Partition, Source
+from rankfold.sources.location import is_url, url_fs
 from rankfold.sources.npy import NpySource
 from rankfold.sources.parquet import ParquetSource
+from rankfold.sources.spec import SourceSpec
 from rankfold.sources.zarr_array import ZarrSource
 
 __all__ = ["open_source", "Source", "Partition", "NpySource", "ParquetSource", "ZarrSource"]
@@ -19,6 +22,8 @@ __all__ = ["open_source", "Source", "Partition", "NpySource", "ParquetSource", "
 
 def detect_format(path: str) -> str:
     """``"parquet"``, ``"zarr"`` or ``"npy"`` from the path's name and contents."""
+    if is_url(path):
+        return _detect_url_format(path)
     if not os.path.exists(path):
         raise SourceError(f"{path}: no such file or folder")
     if not os.access(path, os.R_OK):
@@ -46,6 +51,38 @@ def detect_format(path: str) -> str:
         "Zarr arrays or groups (a folder with zarr.json or .zarray) and .npy files")
 
 
+def _detect_url_format(url: str) -> str:
+    """:func:`detect_format` for an fsspec URL: the same rules, through the URL's filesystem."""
+    try:
+        fs, p = url_fs(url)
+        if not fs.exists(p):
+            raise SourceError(f"{url}: no such file or folder")
+        lower = p.rstrip("/").lower()
+        if fs.isfile(p):
+            if lower.endswith(".npy"):
+                return "npy"
+            if lower.endswith((".parquet", ".parq", ".pq")):
+                return "parquet"
+            with fs.open(p, "rb") as fh:
+                head = fh.read(6)
+            if head.startswith(b"PAR1"):
+                return "parquet"
+            if head == b"\x93NUMPY":
+                return "npy"
+        else:
+            if any(fs.exists(f"{p.rstrip('/')}/{f}") for f in ("zarr.json", ".zarray", ".zgroup")):
+                return "zarr"
+            if any(f.endswith((".parquet", ".parq", ".pq")) for f in fs.find(p)):
+                return "parquet"
+    except SourceError:
+        raise
+    except Exception as exc:  # fsspec back ends raise their own types (credentials, network)
+        raise SourceError(f"{url}: cannot reach ({type(exc).__name__}: {exc})") from None
+    raise SourceError(
+        f"{url}: unknown format; rankfold reads Parquet files or folders (.parquet), "
+        "Zarr arrays or groups (a folder with zarr.json or .zarray) and .npy files")
+
+
 def open_source(path: str, *, samples_as: str = "rows", columns=None, exclude=None,
                 id_column: str | None = None, missing_code: float | None = None,
                 array: str | None = None) -> Source:
@@ -54,7 +91,9 @@ def open_source(path: str, *, samples_as: str = "rows", columns=None, exclude=No
     Parameters
     ----------
     path : str
-        Parquet file or folder, Zarr array or group, or ``.npy`` file.
+        Parquet file or folder, Zarr array or group, or ``.npy`` file; a local
+        path or an fsspec URL (``file://``, ``memory://``, ``s3://``, ``gs://``;
+        not for ``.npy``), credentials from fsspec's usual configuration.
     samples_as : {"rows", "columns"}
         How samples are stored in a 2-D array (Zarr, .npy). Parquet rows are
         always samples.
@@ -73,6 +112,18 @@ def open_source(path: str, *, samples_as: str = "rows", columns=None, exclude=No
     """
     if samples_as not in ("rows", "columns"):
         raise UsageError(f"samples_as must be 'rows' or 'columns', got {samples_as!r}")
+    src = _open(path, samples_as=samples_as, columns=columns, exclude=exclude, id_column=id_column,
+                missing_code=missing_code, array=array)
+    options = {"samples_as": samples_as, "columns": columns, "exclude": exclude, "id_column": id_column,
+               "missing_code": missing_code, "array": array}
+    src._spec = SourceSpec(
+        path if "://" in path else os.path.abspath(path),
+        tuple((k, tuple(v) if isinstance(v, list) else v) for k, v in options.items() if v is not None),
+        uuid.uuid4().hex, (src.n_samples, src.n_features), str(src.storage_dtype))
+    return src
+
+
+def _open(path: str, *, samples_as, columns, exclude, id_column, missing_code, array) -> Source:
     fmt = detect_format(path)
     if fmt == "parquet":
         if samples_as != "rows":
@@ -83,6 +134,9 @@ def open_source(path: str, *, samples_as: str = "rows", columns=None, exclude=No
         raise UsageError(f"{path}: column selection (columns, exclude, id_column) applies to Parquet sources only")
     elif fmt == "zarr":
         source = ZarrSource(path, samples_as=samples_as, array=array, missing_code=missing_code)
+    elif is_url(path):
+        raise SourceError(f"{path}: .npy files are read through memory maps, which need a local file; copy it "
+                          "locally, or store the table as Zarr or Parquet to read it from a URL")
     else:
         source = NpySource(path, samples_as=samples_as, missing_code=missing_code)
     # The state every pass must find unchanged (Source.check_unchanged).

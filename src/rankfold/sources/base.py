@@ -92,6 +92,28 @@ class Source(ABC):
     _opened_stats: dict | None = None  # file_stats() when opened (record_file_stats)
     _passes_checked: int = 0
 
+    _spec = None  # set by open_source: how another process reopens this table (sources/spec.py)
+
+    def spec(self):
+        """The :class:`~rankfold.sources.spec.SourceSpec` another process reopens this table from.
+
+        Raises
+        ------
+        UsageError
+            The source was built directly rather than by :func:`~rankfold.sources.open_source`.
+        """
+        if self._spec is None:
+            raise UsageError(f"{getattr(self, 'path', 'this source')}: only sources opened with "
+                             "rankfold.open_source (or given as a path) can be reopened by cluster workers")
+        return self._spec
+
+    def __reduce__(self):
+        # Another process gets the recipe, never open handles or cached data:
+        # unpickling reopens the table there (once per thread, see sources/spec.py).
+        from rankfold.sources.spec import reopen
+
+        return (reopen, (self.spec(),))
+
     @property
     def shape(self) -> tuple[int, int]:
         """``(n_samples, n_features)``."""

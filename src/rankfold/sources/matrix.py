@@ -15,6 +15,7 @@ import os
 import numpy as np
 
 from rankfold.sources.base import Source, block_buffer
+from rankfold.sources.location import is_url, tree_stat
 
 
 class StoredMatrixSource(Source):
@@ -63,8 +64,8 @@ class StoredMatrixSource(Source):
     def fingerprint(self) -> dict:
         return {
             "kind": self.kind,
-            "path": os.path.abspath(self.path),
-            "files": _tree_stat(self.path),
+            "path": self.path if is_url(self.path) else os.path.abspath(self.path),
+            "files": tree_stat(self.path) if is_url(self.path) else _tree_stat(self.path),
             "stored_shape": list(self.stored_shape),
             "dtype": str(self.storage_dtype),
             "native_axis": self.native_axis,

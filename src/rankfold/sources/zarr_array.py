@@ -14,12 +14,12 @@ in format 3, the ``_ARRAY_DIMENSIONS`` attribute in format 2).
 
 from __future__ import annotations
 
-import os
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 
 from rankfold.errors import SourceError
+from rankfold.sources import location
 from rankfold.sources.base import FLOAT_BYTES_IN_FLIGHT, is_real_dtype
 from rankfold.sources.matrix import StoredMatrixSource
 from rankfold.sources.npy import _default_names
@@ -65,11 +65,11 @@ class ZarrSource(StoredMatrixSource):
             if array not in node:
                 raise SourceError(f"{path}: no array named {array!r}; 2-D arrays here: {', '.join(two_d) or 'none'}")
             arr = node[array]
-            path = os.path.join(path, array)
+            path = location.join(path, array)
         else:
             arr = node
-            parent = os.path.dirname(os.path.abspath(path))
-            if any(os.path.exists(os.path.join(parent, f)) for f in ("zarr.json", ".zgroup")):
+            parent = location.parent(path)
+            if any(location.exists(location.join(parent, f)) for f in ("zarr.json", ".zgroup")):
                 group_path = parent
         if arr.ndim != 2:
             raise SourceError(f"{path}: expected a 2-D array, found {arr.ndim}-D with shape {arr.shape}")

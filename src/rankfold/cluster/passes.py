@@ -1,0 +1,135 @@
+"""One pass over the data as cluster tasks (the client side of :mod:`rankfold.cluster`).
+
+The partition's blocks are cut into contiguous ranges, ``TASKS_PER_THREAD``
+per worker thread (enough to even out a slow worker, few enough that states
+stay a small part of the traffic).  Each range is a task that folds its
+blocks into a fresh copy of the empty state; results merge pairwise in a
+balanced tree of tasks on the workers (so large states such as an n x n Gram
+matrix are added where they are, and only the final state comes back to the
+client).  Merging is exact for every state (:mod:`rankfold.folds`), so the
+answer equals a serial pass to rounding (about 1e-15 relative, merge order).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import time
+import uuid
+
+import cloudpickle
+
+from rankfold.cluster.worker import fold_range, merge_pair, pack_state
+from rankfold.errors import ClusterError
+from rankfold.routes.common import PassRecord
+from rankfold.sources.base import Partition
+
+# Attributes of feature-block states used in messages only: not shipped (a worker takes
+# the names from its own source), restored on the merged state.
+MESSAGE_ONLY = ("feature_names", "source_path")
+TASKS_PER_THREAD = 3  # block ranges per worker thread: evens out a slow worker, keeps states few
+
+
+def block_ranges(n_blocks: int, n_tasks: int) -> list[tuple[int, int]]:
+    """Cut ``n_blocks`` into ``n_tasks`` (or fewer) contiguous ranges of near-equal length."""
+    n_tasks = max(1, min(n_blocks, n_tasks))
+    edges = [round(i * n_blocks / n_tasks) for i in range(n_tasks + 1)]
+    return [(a, b) for a, b in zip(edges[:-1], edges[1:]) if b > a]
+
+
+def cluster_pass(name: str, inp, partition: Partition, state, prepare) -> tuple[object, PassRecord]:
+    """Run one pass of ``partition`` on ``inp.cluster``; same contract as ``run_pass``.
+
+    ``state`` is the empty template; its class, its bytes, its attributes that
+    are not serialized (lookup tables, widths) and ``prepare`` are shipped with
+    each task.  A state that calls back into this process while folding runs
+    here instead, serially.  Returns the merged state and the pass record.
+    """
+    extras = {k: v for k, v in vars(state).items() if k not in type(state)._fields and k not in MESSAGE_ONLY}
+    if any(callable(v) for v in extras.values()):
+        # The state hands rows to a callback in this process as it folds (scores written
+        # while they are computed, the randomized route's captured thin product): such a
+        # pass runs here, serially, on the same blocks.
+        from rankfold.routes.common import run_pass
+
+        return run_pass(name, dataclasses.replace(inp, cluster=None), partition, state, prepare)
+    from distributed import as_completed
+
+    session = inp.cluster
+    client = session.client
+    source = inp.source
+    spec = source.spec()
+    t0 = time.perf_counter()
+    cls = type(state)
+    template = pack_state(state)
+    names = {"feature_names": getattr(state, "feature_names", None) is not None,
+             "source_path": getattr(state, "source_path", None), "extras": extras}
+    shipped = len(template) + len(cloudpickle.dumps(prepare)) + len(cloudpickle.dumps(spec))
+    ranges = block_ranges(len(partition), TASKS_PER_THREAD * session.threads)
+    key = f"rankfold-{name.replace(' ', '-')}-{uuid.uuid4().hex[:8]}"
+    folds = []
+    for i, (a, b) in enumerate(ranges):
+        folds.append(client.submit(fold_range, spec, partition.axis, partition.bounds[a:b], cls, template,
+                                   prepare, session.blas_limits, names, key=f"{key}-fold-{i}", pure=False))
+    level, depth, merges = folds, 0, []
+    while len(level) > 1:
+        depth += 1
+        nxt = [client.submit(merge_pair, cls, level[i], level[i + 1], key=f"{key}-merge-{depth}-{i // 2}",
+                             pure=False) for i in range(0, len(level) - 1, 2)]
+        merges.extend(nxt)
+        if len(level) % 2:
+            nxt.append(level[-1])
+        level = nxt
+    root = level[0]
+    session.tasks += len(folds) + len(merges)
+    position = {f.key: i for i, f in enumerate(folds)}
+    unit_bytes = source.other_length(partition.axis) * source.storage_dtype.itemsize
+    done_blocks = read = 0
+    try:
+        # Progress comes from completion notices only: fold states stay on the workers
+        # for their merges, and only the root's state is fetched.
+        with client.as_current():  # as_completed looks for the current client; ours need not be the default
+            for future in as_completed(folds):
+                if future.status == "error":
+                    future.result()  # raises the worker's exception here
+                a, b = ranges[position[future.key]]
+                done_blocks += b - a
+                read += sum(hi - lo for lo, hi in partition.bounds[a:b]) * unit_bytes
+                if inp.progress is not None:
+                    inp.progress({"pass": name, "block": done_blocks, "blocks": len(partition), "bytes": read,
+                                  "seconds": time.perf_counter() - t0})
+        payload, blocks, read = root.result()
+    except Exception as exc:
+        # Stop what is still queued; finished futures are released with their references
+        # (cancelling a finished future that a merge still needs upsets the scheduler).
+        pending = [f for f in [*folds, *merges] if not f.done()]
+        if pending:
+            client.cancel(pending)
+        _reraise(exc, name)
+    # Upper bound of the traffic: every task's arguments once, and every fold or merge
+    # result once to its merge or to us (states have the same size whatever their range).
+    session.bytes_moved += len(folds) * shipped + (len(folds) + len(merges)) * len(payload)
+    merged = cls.from_bytes(payload)
+    for attr in (*MESSAGE_ONLY, *extras):
+        if getattr(state, attr, None) is not None:
+            setattr(merged, attr, getattr(state, attr))
+    record = PassRecord(name, partition.axis, len(partition), partition.largest, read, time.perf_counter() - t0)
+    return merged, record
+
+
+def _reraise(exc: Exception, name: str):
+    """Our own errors pass through (a DataError found on a worker); cluster failures get a message."""
+    from rankfold.errors import RankfoldError
+
+    if isinstance(exc, RankfoldError):
+        raise exc.with_traceback(None) from None
+    from distributed.scheduler import KilledWorker
+
+    if isinstance(exc, KilledWorker):
+        raise ClusterError(f"the {name} pass failed: workers died repeatedly while running one of its tasks "
+                           f"({exc}); check the workers' memory against the planner's peak estimate "
+                           "(`rankfold plan`)") from None
+    if isinstance(exc, (OSError, TimeoutError)) or type(exc).__name__ in ("CommClosedError", "CancelledError",
+                                                                          "FutureCancelledError"):
+        raise ClusterError(f"the {name} pass lost its cluster ({type(exc).__name__}: {exc}); "
+                           "no result was written") from None
+    raise exc
