@@ -80,7 +80,7 @@ def residual_lines(residual, fraction, sample_ids, flag: dict | None, worst: int
         top = top[np.argsort(values[top])[::-1]]
         frac = np.asarray(fraction[:])[top] if fraction is not None else np.full(count, np.nan)
         ids = np.asarray(sample_ids[:]) if sample_ids is not None else None
-        lines.append(f"worst explained samples (largest squared residual):")
+        lines.append("worst explained samples (largest squared residual):")
         lines.append(f"  {'sample':>10}  {'id':>16}  {'residual':>12}  {'fraction':>8}")
         for i, f in zip(top, frac):
             label = str(ids[i]) if ids is not None else "-"

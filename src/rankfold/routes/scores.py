@@ -70,8 +70,7 @@ def project(inp: RouteInput, loadings, center, scale, sink, passes: list, label:
     chooses the reading direction (default: the source's stored rows).
     """
     source = inp.source
-    n, m = source.n_samples, loadings.shape[0]
-    k = loadings.shape[1]
+    n, k = source.n_samples, loadings.shape[1]
     if prepare is None:
         def prepare(block, start):
             return block

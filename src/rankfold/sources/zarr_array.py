@@ -14,6 +14,7 @@ in format 3, the ``_ARRAY_DIMENSIONS`` attribute in format 2).
 
 from __future__ import annotations
 
+import os
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
