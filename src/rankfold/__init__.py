@@ -10,9 +10,14 @@ plan(source, rank, ...) -> Plan
     The route, passes, memory and time a decomposition would take, from metadata only.
 open_source(path, ...) -> Source
     Open a table without reading its data (shape, names, blocks).
+compare_subset(source, rank, ...) -> dict
+    Exact against randomized components on a reproducible random subset.
+compare_results(a, b, ...) -> dict
+    The per-component agreement of two stored results of the same source.
 """
 
 from rankfold.api import decompose, plan
+from rankfold.compare import compare_results, compare_subset
 from rankfold.errors import (
     DataError,
     MemoryLimitError,
@@ -29,6 +34,8 @@ __version__ = "0.1.0"
 __all__ = [
     "decompose",
     "plan",
+    "compare_subset",
+    "compare_results",
     "open_result",
     "open_source",
     "Result",
