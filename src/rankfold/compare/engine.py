@@ -17,7 +17,8 @@ import tempfile
 
 import numpy as np
 
-from rankfold.compare.metrics import component_angles, eigenvalue_relative_error, outside_norm, score_correlation
+from rankfold.compare.metrics import (component_angles, eigenvalue_relative_error, outside_norm,
+                                      outside_norm_streamed, score_correlation)
 from rankfold.compare.output import ReportFolder, plain, write_report
 from rankfold.compare.settings import DEFAULT_OVERSAMPLE, Setting, as_settings, default_settings
 from rankfold.compare.subset import ArraySource, draw_subset, materialize, parse_fraction, smallest_fraction
@@ -145,14 +146,18 @@ def _run_subset(src: Source, draw, rank: int, settings: list[Setting], target: f
             raise MemoryLimitError(f"no exact route fits the subset of {sub.n_samples:,} x {sub.n_features:,} "
                                    f"within the memory limit; use a smaller --subset or --feature-subset, "
                                    "or raise --memory-limit")
+        runs = [(s, rankfold.decompose(sub, rank, memory_limit=run_limit, **s.params(), **options))
+                for s in settings]
+        # Every figure below uses the reference's transform (subset means, and spreads when
+        # standardizing): the settings compute the same moments of the same rows.
         view = _SubsetView(sub, exact, limit // 8)
-        ref_scores = view.scores(exact)
+        ref_scores = view.scores(exact.loadings)
         entries = []
-        for setting in settings:
-            r = rankfold.decompose(sub, rank, memory_limit=run_limit, **setting.params(), **options)
+        for setting, r in runs:
             entry = _figures(setting.label, setting.params(), exact, r)
-            entry["score_correlation"] = score_correlation(ref_scores, view.scores(r), exact.loadings, r.loadings)
-            entry["true_error"] = outside_norm(view.apply_covariance, r.loadings, sub.n_features)
+            entry["score_correlation"] = score_correlation(ref_scores, view.scores(r.loadings),
+                                                           exact.loadings, r.loadings)
+            entry["true_error"] = view.outside_norm(r.loadings)
             entry["meets_target"] = bool(np.max(entry["angle_degrees"]) < target)
             entries.append(entry)
     finally:
@@ -163,10 +168,10 @@ def _run_subset(src: Source, draw, rank: int, settings: list[Setting], target: f
     estimate = None
     if best is not None:
         estimate = _full_table_estimate(src, rank, best["params"], limit, options)
-    name = os.path.basename(str(src.path).rstrip("/")) or str(src.path)
     comparison = {
         "kind": "subset",
-        "title": f"Exact against randomized components on a {draw.fraction:.1%} subset of {name} (rank {rank})",
+        "title": f"Exact against randomized components on a {draw.fraction:.1%} subset of "
+                 f"{_source_name(src.path)} (rank {rank})",
         "source": str(src.path),
         "subset": draw.summary(),
         "reference": _reference(f"exact ({exact.route} route)", exact),
@@ -178,32 +183,46 @@ def _run_subset(src: Source, draw, rank: int, settings: list[Setting], target: f
     return plain(comparison)
 
 
+def _source_name(path: str) -> str:
+    """The last part of a path, with its parent when that is a Zarr store (``panel.zarr/dosage``)."""
+    parent, name = os.path.split(str(path).rstrip("/"))
+    return f"{os.path.basename(parent)}/{name}" if parent.endswith(".zarr") else (name or str(path))
+
+
 class _SubsetView:
-    """Blocks of the subset, transformed as the reference transformed them."""
+    """The subset centered and scaled as the reference did it, missing values at zero.
+
+    An in-memory subset is transformed in place once (the runs are over, and a
+    second copy would double its memory); a subset on disk is transformed
+    block by block at every use.
+    """
 
     def __init__(self, sub: Source, reference: Result, block_bytes: int):
         self.sub = sub
         self.center, self.scale = reference.center, reference.scale
         self.n = sub.n_samples
+        self.y = None
+        if isinstance(sub, ArraySource):
+            self.y = self._transform(sub.data)
         self.partition = sub.partition("samples", max(block_bytes, sub.bytes_per_unit("samples")))
 
-    def blocks(self, center=None, scale=None):
-        center = self.center if center is None else center
-        scale = self.scale if scale is None else scale
-        if isinstance(self.sub, ArraySource):
-            bounds = [(0, self.n)]
-        else:
-            bounds = self.partition.bounds
-        for a, b in bounds:
-            x = self.sub.data[a:b] if isinstance(self.sub, ArraySource) else self.sub.read("samples", a, b)
-            y = (x - center) / scale
-            # Missing values were filled with the column mean by the routes: zero once centered.
-            np.nan_to_num(y, copy=False, nan=0.0)
-            yield y
+    def _transform(self, x: np.ndarray) -> np.ndarray:
+        x -= self.center
+        x /= self.scale
+        # Missing values were filled with the column mean by the routes: zero once centered.
+        x[np.isnan(x)] = 0.0
+        return x
 
-    def scores(self, result: Result) -> np.ndarray:
-        """``((X - center) / scale) @ loadings`` in the result's own transform, shape (n, k)."""
-        return np.vstack([y @ result.loadings for y in self.blocks(result.center, result.scale)])
+    def blocks(self):
+        if self.y is not None:
+            yield self.y
+            return
+        for a, b in self.partition.bounds:
+            yield self._transform(self.sub.read("samples", a, b))
+
+    def scores(self, loadings: np.ndarray) -> np.ndarray:
+        """Sample coordinates ``Y @ loadings``, shape (n, k)."""
+        return np.vstack([y @ loadings for y in self.blocks()])
 
     def apply_covariance(self, v: np.ndarray) -> np.ndarray:
         """``C v`` with ``C = Y^T Y / (n - 1)`` the subset's covariance (or correlation)."""
@@ -211,6 +230,12 @@ class _SubsetView:
         for y in self.blocks():
             out += y.T @ (y @ v)
         return out / (self.n - 1)
+
+    def outside_norm(self, loadings: np.ndarray) -> float:
+        """Spectral norm of the covariance left outside ``loadings`` (:func:`metrics.outside_norm`)."""
+        if self.y is not None:
+            return outside_norm(self.y, loadings)
+        return outside_norm_streamed(self.apply_covariance, loadings, self.sub.n_features)
 
 
 def _figures(label: str, params: dict, reference: Result, other: Result, k: int | None = None) -> dict:
@@ -419,3 +444,43 @@ def _check_int(name: str, value, low: int, high: int) -> None:
 
 def _percent(f: float) -> str:
     return f"{100 * f:.3g}%"
+
+
+def compare_paths(paths, *, rank=None, out=None, target_angle: float = DEFAULT_TARGET_ANGLE, **subset_options) -> dict:
+    """What ``rankfold compare`` does with its positional arguments.
+
+    Two rankfold results: :func:`compare_results`.  One data source (with
+    ``rank``): :func:`compare_subset`.  Anything else is a usage error that
+    says which argument is what.
+    """
+    from rankfold.result import _is_result
+
+    paths = [os.fspath(p) for p in paths]
+    results = [p for p in paths if _is_result(p)]
+    if len(paths) == 2:
+        if len(results) != 2:
+            other = next(p for p in paths if p not in results)
+            raise UsageError(f"{other}: not a rankfold result; compare takes either two result stores "
+                             "(RESULT_A.zarr RESULT_B.zarr) or one data source with --rank")
+        given = [k for k, v in subset_options.items() if v not in (None, False, "refuse", "rows")]
+        if rank is not None or given:
+            names = ", ".join(["rank"] * (rank is not None) + given)
+            raise UsageError(f"{names}: these options apply to a subset comparison of a data source, "
+                             "not to two stored results")
+        return compare_results(paths[0], paths[1], out=out, target_angle=target_angle)
+    if len(paths) != 1:
+        raise UsageError(f"compare takes one data source or two result stores; got {len(paths)} paths")
+    if results:
+        raise UsageError(f"{paths[0]}: is a rankfold result; give a second result to compare it with, or the "
+                         "data source itself with --rank for a subset comparison")
+    if rank is None:
+        raise UsageError(f"{paths[0]}: a subset comparison needs --rank K")
+    options = {k: v for k, v in subset_options.items() if v is not None}
+    options.setdefault("seed", 0)
+    return compare_subset(paths[0], rank, out=out, target_angle=target_angle, **options)
+
+
+def report_page(folder: str) -> str | None:
+    """The HTML page of a report folder, or None when only the JSON was written."""
+    pages = sorted(f for f in os.listdir(folder) if f.endswith(".html")) if os.path.isdir(folder) else []
+    return os.path.join(folder, pages[0]) if pages else None

@@ -47,8 +47,8 @@ def score_correlation(reference_scores: np.ndarray, other_scores: np.ndarray,
     return np.where(denom > 0, r, np.nan)
 
 
-def outside_norm(apply_covariance, loadings: np.ndarray, n_features: int) -> float:
-    """Spectral norm of ``(I - L L^T) C``: the covariance left outside the components ``L``.
+def outside_norm(y: np.ndarray, loadings: np.ndarray) -> float:
+    """Spectral norm of ``(I - L L^T) C`` with ``C = Y^T Y / (n - 1)``: the covariance left outside ``L``.
 
     This is the quantity the randomized route's a posteriori estimate bounds
     (Halko, Martinsson and Tropp 2011, sec. 4.3), in variance units.  It is at
@@ -57,32 +57,48 @@ def outside_norm(apply_covariance, loadings: np.ndarray, n_features: int) -> flo
 
     Parameters
     ----------
-    apply_covariance : callable
-        ``V (m, j) -> C V (m, j)``; ``C`` symmetric.
-    loadings : ndarray, shape (m, k)
-    n_features : int
+    y : ndarray, shape (n, m)
+        The centered (and scaled) table.
+    loadings : ndarray, shape (m, k), orthonormal columns
 
     Notes
     -----
-    Computed as the square root of the largest eigenvalue of
-    ``A^T A`` with ``A = (I - L L^T) C``, by ``scipy.sparse.linalg.eigsh`` on a
-    linear operator (each product applies ``C`` twice), or densely when
-    ``m <= 600``.
+    With ``m <= n`` the ``m x m`` matrix is formed.  Otherwise the work stays in
+    sample space: with ``G = Y Y^T`` and ``Z = Y L``, the squared norm is the
+    largest eigenvalue of ``C (I - P) C``, whose nonzero eigenvalues are those
+    of ``(G - Z Z^T) G`` (``eig(AB) = eig(BA)``), computed as the symmetric
+    ``G^(1/2) (G - Z Z^T) G^(1/2)``.  Cost ``O(n m min(n, m))``.
     """
+    n, m = y.shape
+    if m <= n:
+        c = y.T @ y
+        return float(np.linalg.norm(c - loadings @ (loadings.T @ c), 2)) / (n - 1)
+    g = y @ y.T
+    z = y @ loadings
+    w, v = np.linalg.eigh(g)
+    half = (v * np.sqrt(np.clip(w, 0, None))) @ v.T
+    top = np.linalg.eigvalsh(half @ (g - z @ z.T) @ half)[-1]
+    return float(np.sqrt(max(top, 0.0))) / (n - 1)
+
+
+def outside_norm_streamed(apply_covariance, loadings: np.ndarray, n_features: int) -> float:
+    """:func:`outside_norm` for a table that is not in memory, from products ``V -> C V``.
+
+    The largest eigenvalue of ``A^T A``, ``A = (I - L L^T) C``, by
+    ``scipy.sparse.linalg.eigsh`` on a linear operator: each product applies
+    ``C`` twice (two reads of the table), a few dozen products in all.
+    """
+    from scipy.sparse.linalg import LinearOperator, eigsh
+
     m = n_features
 
     def outside(v):
         return v - loadings @ (loadings.T @ v)
 
-    if m <= 600:
-        c = apply_covariance(np.eye(m))
-        return float(np.linalg.norm(outside(c), 2))
-    from scipy.sparse.linalg import LinearOperator, eigsh
-
     def gram(v):
         v = v.reshape(m, -1)
-        a = outside(apply_covariance(v))
-        return apply_covariance(outside(a)).ravel() if v.shape[1] == 1 else apply_covariance(outside(a))
+        out = apply_covariance(outside(outside(apply_covariance(v))))
+        return out.ravel() if out.shape[1] == 1 else out
 
     op = LinearOperator((m, m), matvec=gram, matmat=gram, dtype=np.float64)
     top = eigsh(op, k=1, which="LA", return_eigenvectors=False, tol=1e-8)

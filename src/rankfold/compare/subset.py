@@ -209,6 +209,24 @@ def materialize(source: Source, draw: SubsetDraw, memory_limit: int, scratch: st
         target = os.path.join(scratch, "subset.npy")
         data = np.lib.format.open_memmap(target, mode="w+", dtype=np.float64, shape=(n_sub, m_sub))
     piece_rows = max(1, (memory_limit // 8) // max(1, source.bytes_per_unit("samples")))
+    widest_unit = max((draw.units.bounds[i][1] - draw.units.bounds[i][0] for i in draw.chosen_units), default=0)
+    if source.native_axis == "features" and widest_unit > piece_rows:
+        # Samples stored as columns, and a chosen unit does not fit one read: every read of a
+        # range of samples walks all the stored rows, so read the stored rows once instead.
+        filled = _fill_from_features(source, draw, data, memory_limit)
+    else:
+        filled = _fill_from_samples(source, draw, data, piece_rows)
+    if filled != n_sub:  # pragma: no cover - guards the bookkeeping above
+        raise DataError(f"{source.path}: read {filled} subset samples, expected {n_sub}")
+    if target is None:
+        return ArraySource(data, names, label)
+    data.flush()
+    del data
+    return NpySource(target, feature_names=names)
+
+
+def _fill_from_samples(source: Source, draw: SubsetDraw, data: np.ndarray, piece_rows: int) -> int:
+    """Read each chosen unit in pieces of ``piece_rows`` samples; keep the drawn rows."""
     all_features = draw.features.size == source.n_features
     filled = 0
     for i in draw.chosen_units:
@@ -219,16 +237,24 @@ def materialize(source: Source, draw: SubsetDraw, memory_limit: int, scratch: st
             r0, r1 = np.searchsorted(draw.rows[lo:hi], [a, b]) + lo
             if r1 == r0:
                 continue
-            # read() handles the orientation: samples stored as columns come back transposed.
+            # read() handles the orientation: samples stored as columns come back as rows.
             block = source.read("samples", a, b)
             picked = block[draw.rows[r0:r1] - a]
             data[filled:filled + (r1 - r0)] = picked if all_features else picked[:, draw.features]
             filled += r1 - r0
             del block, picked
-    if filled != n_sub:  # pragma: no cover - guards the bookkeeping above
-        raise DataError(f"{source.path}: read {filled} subset samples, expected {n_sub}")
-    if target is None:
-        return ArraySource(data, names, label)
-    data.flush()
-    del data
-    return NpySource(target, feature_names=names)
+    return filled
+
+
+def _fill_from_features(source: Source, draw: SubsetDraw, data: np.ndarray, memory_limit: int) -> int:
+    """Read blocks of whole features (the stored rows) once; keep the drawn samples and features."""
+    step = max(1, (memory_limit // 8) // max(1, source.bytes_per_unit("features")))
+    for a in range(0, source.n_features, step):
+        b = min(source.n_features, a + step)
+        f0, f1 = np.searchsorted(draw.features, [a, b])
+        if f1 == f0:
+            continue
+        block = source.read("features", a, b)  # (b - a, n_samples)
+        data[:, f0:f1] = block[draw.features[f0:f1] - a][:, draw.rows].T
+        del block
+    return draw.rows.size
