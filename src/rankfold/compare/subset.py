@@ -113,13 +113,18 @@ def sample_units(source: Source) -> Partition:
 
 
 def _sample_alignment(source: Source) -> int:
-    if source.native_axis == "samples":
-        return source.alignment("samples")
-    # Samples stored as columns: a Zarr chunk spans several columns; cutting units at
-    # chunk columns means a chosen unit decodes only its own chunks.
+    """Samples per storage chunk, where reading part of a chunk decodes all of it (Zarr); else 1.
+
+    ``.npy`` maps any row range directly and Parquet streams row groups, so
+    their units need no alignment (the ``.npy`` reader's preferred step, 8 MB
+    of rows, would leave too few units to spread the subset).
+    """
     arr = getattr(source, "_arr", None)
     chunks = getattr(arr, "chunks", None)
-    return int(chunks[1]) if chunks is not None and len(chunks) == 2 else 1
+    if chunks is None or len(chunks) != 2:
+        return 1
+    # Samples stored as rows: a chunk spans several rows; as columns, several columns.
+    return int(chunks[0] if source.native_axis == "samples" else chunks[1])
 
 
 def draw_subset(source: Source, fraction: float, feature_fraction: float | None = None,
