@@ -83,15 +83,16 @@ def plain(value):
 
 
 def write_report(comparison: dict, folder: str, **results) -> str | None:
-    """Write ``comparison.json`` and, when the report module is present, the HTML report.
+    """Write the report of ``comparison`` into the empty ``folder``.
 
-    Returns the report page's path inside ``folder`` (or None without the
-    report module).
+    With the report module (:mod:`rankfold.reporting`) present, it writes the
+    page, figures and ``comparison.json``; without it, ``comparison.json`` only.
+    Returns the page's path, or None when only the JSON was written.
     """
-    with open(os.path.join(folder, COMPARISON_FILE), "w") as fh:
-        json.dump(comparison, fh, indent=1, allow_nan=False)
     try:
         from rankfold.reporting import write_comparison_report
-    except ImportError:  # the HTML report is built on another branch; JSON alone until it lands
+    except ImportError:  # the HTML report lives in its own module; the numbers are written regardless
+        with open(os.path.join(folder, COMPARISON_FILE), "w") as fh:
+            json.dump(comparison, fh, indent=1, allow_nan=False)
         return None
     return write_comparison_report(comparison, folder, **results)

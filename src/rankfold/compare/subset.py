@@ -166,14 +166,17 @@ def draw_subset(source: Source, fraction: float, feature_fraction: float | None 
 
 
 def smallest_fraction(n_samples: int, needed: int) -> float:
-    """The smallest sample fraction (rounded up to 0.1%) whose subset is very likely to hold ``needed`` samples.
+    """The smallest sample fraction (rounded up to two significant digits) very likely to hold ``needed`` samples.
 
     The expected size must exceed ``needed`` by four standard deviations of
     a Poisson count (``4 sqrt(needed)``): a Bernoulli(p) draw over n samples
     has mean n p and variance n p (1 - p) <= n p (common practice).
     """
-    want = needed + 4 * math.sqrt(needed)
-    return min(1.0, math.ceil(1000 * want / max(1, n_samples)) / 1000)
+    want = (needed + 4 * math.sqrt(needed)) / max(1, n_samples)
+    if want >= 1:
+        return 1.0
+    step = 10.0 ** (math.floor(math.log10(want)) - 1)
+    return min(1.0, math.ceil(want / step * (1 - 1e-12)) * step)
 
 
 class ArraySource(StoredMatrixSource):

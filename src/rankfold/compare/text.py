@@ -31,8 +31,8 @@ def comparison_lines(c: dict) -> list[str]:
                      f"{'yes' if e['meets_target'] else 'no'}")
     if c["kind"] == "subset":
         if c["recommended"]:
-            lines.append(f"recommended: {c['recommended']} (the fewest passes, then the least time, among "
-                         "the settings meeting the target)")
+            lines.append(f"recommended: {c['recommended']} (meets the target with the fewest passes, "
+                         "then the least memory)")
         else:
             lines.append("recommended: none of the settings meets the target; try more power iterations "
                          "(q), krylov, a larger oversampling (p), or a looser --target-angle")
