@@ -217,8 +217,8 @@ def materialize(source: Source, draw: SubsetDraw, memory_limit: int, scratch: st
         target = os.path.join(scratch, "subset.npy")
         data = np.lib.format.open_memmap(target, mode="w+", dtype=np.float64, shape=(n_sub, m_sub))
     piece_rows = max(1, (memory_limit // 8) // max(1, source.bytes_per_unit("samples")))
-    widest_unit = max((draw.units.bounds[i][1] - draw.units.bounds[i][0] for i in draw.chosen_units), default=0)
-    if source.native_axis == "features" and widest_unit > piece_rows:
+    widest = max((b - a for a, b in _read_spans(source, draw)), default=0)
+    if source.native_axis == "features" and widest > piece_rows:
         # Samples stored as columns, and a chosen unit does not fit one read: every read of a
         # range of samples walks all the stored rows, so read the stored rows once instead.
         filled = _fill_from_features(source, draw, data, memory_limit)
@@ -233,12 +233,32 @@ def materialize(source: Source, draw: SubsetDraw, memory_limit: int, scratch: st
     return NpySource(target, feature_names=names)
 
 
+def _read_spans(source: Source, draw: SubsetDraw) -> list[tuple[int, int]]:
+    """Ranges of samples to read: per storage group holding drawn rows, its first to last drawn row.
+
+    A storage group is what a read cannot skip inside: a Parquet row group
+    (reading rows from its middle decodes it from its start, but consecutive
+    reads continue one stream), otherwise a chosen unit (whole Zarr chunks).
+    """
+    starts = getattr(source, "_group_starts", None)  # Parquet: first row of every row group
+    if starts is None:
+        edges = [draw.units.bounds[i] for i in draw.chosen_units]
+    else:
+        bounds = list(starts) + [source.n_samples]
+        edges = list(zip(bounds[:-1], bounds[1:]))
+    spans = []
+    for start, stop in edges:
+        lo, hi = np.searchsorted(draw.rows, [start, stop])
+        if hi > lo:
+            spans.append((int(draw.rows[lo]), int(draw.rows[hi - 1]) + 1))
+    return spans
+
+
 def _fill_from_samples(source: Source, draw: SubsetDraw, data: np.ndarray, piece_rows: int) -> int:
-    """Read each chosen unit in pieces of ``piece_rows`` samples; keep the drawn rows."""
+    """Read each span of :func:`_read_spans` in consecutive pieces of ``piece_rows``; keep the drawn rows."""
     all_features = draw.features.size == source.n_features
     filled = 0
-    for i in draw.chosen_units:
-        start, stop = draw.units.bounds[i]
+    for start, stop in _read_spans(source, draw):
         lo, hi = np.searchsorted(draw.rows, [start, stop])
         for a in range(start, stop, piece_rows):
             b = min(stop, a + piece_rows)
