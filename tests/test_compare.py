@@ -142,6 +142,17 @@ def test_settings_syntax():
     assert got[0].label == "subspace p=5 q=3" and got[0].passes == 5 and got[2].passes == 1
 
 
+def test_settings_given_as_objects_or_dicts(tmp_path, iris):
+    from rankfold.compare.settings import as_settings
+
+    got = as_settings([Setting("krylov", 1, 2), {"kind": "subspace", "oversample": 1, "power_iterations": 3}])
+    assert got == [Setting("krylov", 1, 2), Setting("subspace", 1, 3)]
+    c = rankfold.compare_subset(_parquet(tmp_path, iris, "iris"), 2, subset=1.0, settings=got)
+    assert [s["label"] for s in c["settings"]] == ["krylov p=1 q=2", "subspace p=1 q=3"]
+    with pytest.raises(UsageError, match="settings is empty"):
+        as_settings([])
+
+
 @pytest.mark.parametrize("text, named", [
     ("lanczos:q=2", "'lanczos'"), ("subspace:r=2", "'r=2'"), ("subspace:q=x", "'x'"),
     ("subspace:p=-1", "'-1'"), ("one-pass:q=1", "one-pass"), (" ; ", "no setting")])
@@ -364,6 +375,8 @@ def test_argument_validation_names_parameter():
         rankfold.compare_subset("unused", 2, target_angle=0)
     with pytest.raises(UsageError, match="feature_subset must be a fraction"):
         rankfold.compare_subset("unused", 2, feature_subset="200%")
+    with pytest.raises(UsageError, match="missing must be one of refuse, fill-mean; got 'drop'"):
+        rankfold.compare_subset("unused", 2, missing="drop")
 
 
 # ------------------------------------------------------------------ command line (real subprocesses)

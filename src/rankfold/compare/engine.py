@@ -92,6 +92,10 @@ def compare_subset(source, rank: int, *, subset=0.05, feature_subset=None, setti
     target = _check_angle(target_angle)
     _check_int("seed", seed, 0, 2**63 - 1)
     _check_int("rank", rank, 1, 2**31)
+    if missing not in ("refuse", "fill-mean"):
+        raise UsageError(f"missing must be one of refuse, fill-mean; got {missing!r}")
+    if not isinstance(standardize, (bool, np.bool_)):
+        raise UsageError(f"standardize must be True or False; got {standardize!r}")
     limit = parse_memory(memory_limit) if memory_limit is not None else default_memory_limit()
     chosen = as_settings(settings) if settings is not None else None
     folder = ReportFolder(out) if out is not None else None
@@ -435,7 +439,9 @@ def _label(which: str, r: Result) -> str:
         kind = r.attrs.get("sketch", {}).get("kind", p.get("sketch"))
         how = (f"one-pass p={p.get('oversample')}" if kind == "one-pass" else
                f"{kind} p={p.get('oversample')} q={p.get('power_iterations')}")
-    return f"{which}: {_name(r)} ({how}, seed {p.get('seed', '?')})" if r.route == "sketch" else f"{which}: {_name(r)} ({how})"
+    if r.route == "sketch":
+        return f"{which}: {_name(r)} ({how}, seed {p.get('seed', '?')})"
+    return f"{which}: {_name(r)} ({how} route)"
 
 
 def _result_params(r: Result) -> dict:
