@@ -65,7 +65,7 @@ def result_left_behind(out) -> list[str]:
     parent, name = os.path.split(out)
     found = [out] if os.path.exists(out) else []
     found += [os.path.join(parent, f) for f in os.listdir(parent)
-              if f.startswith(f".{name}.partial-") or f.startswith(f".{name}.replaced-")]
+              if f.startswith(tuple(f".{name}.{kind}-" for kind in ("partial", "replaced", "scratch", "staging")))]
     return found
 
 

@@ -355,7 +355,7 @@ def test_failure_after_reading_leaves_nothing(capsys, tmp_path, out):
     x[3900, 0] = np.nan
     path = write_parquet_matrix(tmp_path / "late.parquet", x, ["a", "b", "c"], row_group_size=500)
     refused(capsys, out, INPUT, "decompose", path, "--rank", 1, "--out", out, "--route", "features",
-            "--memory-limit", "60KB", needles=[path, "sample 3,900", "'a'"])
+            "--memory-limit", "60KB", "--no-scores", needles=[path, "sample 3,900", "'a'"])
 
 
 # --------------------------------------------------------------------------- show

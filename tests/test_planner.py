@@ -41,7 +41,10 @@ def npy_request(n: int, m: int, limit: int, *, rank: int = 10, samples_as: str =
 
     Per value in flight: two float64 buffers (16 bytes, sources/readahead.py) plus the stored
     bytes mapped while a block is copied (sources/npy.py, NpySource.bytes_per_unit).
+    Without scores unless asked (``scores=True``): the route models are checked on
+    their own, and the scores' costs in the tests of section 4.
     """
+    options.setdefault("scores", False)
     per_value = 16 + 4
     per_unit = {"samples": m * per_value, "features": n * per_value}
     native = "samples" if samples_as == "rows" else "features"
@@ -70,7 +73,8 @@ def test_request_models_a_real_npy(tmp_path):
     np.save(path, np.zeros((30, 7), dtype=np.float32))
     src = open_source(path)
     try:
-        assert plan_request(src, 2, 10 * MB) == npy_request(30, 7, 10 * MB, rank=2, cores=os.cpu_count() or 1)
+        assert plan_request(src, 2, 10 * MB) == npy_request(30, 7, 10 * MB, rank=2, cores=os.cpu_count() or 1,
+                                                            scores=True)
     finally:
         src.close()
 
@@ -79,13 +83,13 @@ def test_tall_and_narrow_picks_features():
     # 50 million samples x 200 features (40 GB as float32), 2 GB ceiling.  reference: the cost
     # model by hand -- memory needs 4 copies in float64 (320 GB); the sample Gram 3 * n**2 * 8
     # bytes (60 PB); the feature Gram 3 * 200**2 * 8 = 960 KB.  One pass of 2 n m**2 = 4e15 flops
-    # at 2e10 flop/s = 200 s against 133 s of reading, while the sketch reads 4 times (533 s).
+    # at 2e10 flop/s = 200 s against 133 s of reading, while the sketch reads 3 times (400 s).
     plan = make_plan(npy_request(50_000_000, 200, 2 * GB), SPEED)
     assert plan.route == "features"
     routes = by_route(plan)
     assert not routes["memory"].fits and not routes["samples"].fits
-    assert routes["features"].passes == 1 and routes["sketch"].passes == 2 + 2
-    assert routes["features"].bytes_read == 40 * GB and routes["sketch"].bytes_read == 4 * 40 * GB
+    assert routes["features"].passes == 1 and routes["sketch"].passes == 2 + 1
+    assert routes["features"].bytes_read == 40 * GB and routes["sketch"].bytes_read == 3 * 40 * GB
     assert routes["features"].seconds == pytest.approx(200 + 10 * 200**3 / 2e10, rel=1e-9)
     assert routes["features"].peak_memory <= 2 * GB
     assert "feature Gram" in plan.reasons[0]
@@ -126,8 +130,8 @@ def test_small_picks_memory():
 
 def test_approximate_picks_sketch_when_faster():
     # 1 million x 5,000 float32 (20 GB), 4 GB.  Features: one pass of 2 n m**2 = 5e16 flops
-    # = 2,500 s.  Sketch: 4 passes, each bound by reading (66.7 s) since 4 n m (k + p) = 4e11
-    # flops is 20 s; about 267 s.  Exact accuracy keeps the exact route and says what the
+    # = 2,500 s.  Sketch: 3 passes, each bound by reading (66.7 s) since 4 n m (k + p) = 4e11
+    # flops is 20 s; about 200 s.  Exact accuracy keeps the exact route and says what the
     # sketch would save; approximate takes the sketch.
     exact = make_plan(npy_request(1_000_000, 5000, 4 * GB), SPEED)
     approximate = make_plan(npy_request(1_000_000, 5000, 4 * GB, accuracy="approximate"), SPEED)
@@ -187,7 +191,7 @@ def test_plan_lines_mention_passes_memory_time_and_reasons():
     for reason in plan.reasons:
         assert f"why      {reason}" in lines
     assert "other routes:" in text
-    assert "does not fit" in text and "sketch    4 passes" in text
+    assert "does not fit" in text and "sketch    3 passes" in text
 
 
 def test_probe_cache_is_not_in_the_home_folder():
@@ -206,13 +210,23 @@ ESTIMATE_CASES = [
     ("features", {}, "rows", ["feature Gram"]),
     ("features", {"missing": "fill-mean"}, "rows", ["column means", "feature Gram"]),
     ("samples", {}, "rows", ["sample Gram", "loadings"]),
-    ("sketch", {}, "rows", ["column moments", "power iteration", "power iteration", "Rayleigh-Ritz"]),
+    # the moments ride along with the first power iteration (routes/sketch.fuses_moments) ...
+    ("sketch", {}, "rows", ["moments and power iteration", "power iteration", "Rayleigh-Ritz"]),
+    # ... unless there is none, or the spreads or the fill values are needed first
     ("sketch", {"power_iterations": 0}, "rows", ["column moments", "Rayleigh-Ritz"]),
+    ("sketch", {"standardize": True}, "rows", ["column moments", "power iteration", "power iteration",
+                                               "Rayleigh-Ritz"]),
     ("sketch", {"sketch": "krylov", "power_iterations": 1}, "rows",
-     ["column moments", "power iteration", "Rayleigh-Ritz"]),
+     ["moments and power iteration", "Rayleigh-Ritz"]),
     ("sketch", {"sketch": "one-pass"}, "rows", ["one-pass sketch"]),
     ("sketch", {}, "columns", ["power iteration", "power iteration", "Rayleigh-Ritz", "loadings"]),
     ("sketch", {"sketch": "one-pass"}, "columns", ["one-pass sketch", "loadings"]),
+    # With scores (the default): one more pass where the route has none to spare (routes/scores.py).
+    ("features", {"scores": True}, "rows", ["feature Gram", "scores"]),
+    ("sketch", {"scores": True}, "rows", ["moments and power iteration", "power iteration", "Rayleigh-Ritz"]),
+    ("sketch", {"sketch": "one-pass", "scores": True}, "rows", ["one-pass sketch", "scores"]),
+    ("samples", {"scores": True}, "columns", ["sample Gram", "loadings"]),
+    ("memory", {"scores": True}, "rows", ["load"]),
 ]
 
 
@@ -221,6 +235,7 @@ def test_planned_passes_and_bytes_are_what_the_run_does(planted, write_npy, rout
     # reference: the run's own record (attrs["passes"], counted block by block in
     # routes/common.run_pass) against the plan made before reading (attrs["plan"]).
     path = write_npy(planted, samples_as)
+    options = {"scores": False, **options}
     result = rankfold.decompose(path, 3, route=route, samples_as=samples_as, speed=SPEED,
                                 memory_limit=20 * MB, **options)
     assert [p["name"] for p in result.attrs["passes"]] == names
@@ -248,7 +263,8 @@ def test_planned_block_size_is_what_the_run_reads(write_table, fmt, route):
     finally:
         src.close()
     plans = []
-    result = rankfold.decompose(path, 2, route=route, memory_limit=limit, speed=SPEED, on_plan=plans.append)
+    result = rankfold.decompose(path, 2, route=route, memory_limit=limit, speed=SPEED, on_plan=plans.append,
+                                scores=False)
     planned = plans[0].estimate.block_units
     read = max(p["largest_block"] for p in result.attrs["passes"])
     assert planned == read, (f"plan says blocks of {planned} samples, the run read blocks of {read}: "

@@ -60,8 +60,8 @@ def test_store_is_a_zarr_v3_group_with_the_documented_layout(planted, write_npy,
 
     group = zarr.open_group(out, mode="r")
     expected = dict(ARRAY_DIMS)
-    if route in ("memory", "samples"):
-        expected["scores"] = ("sample", "component")
+    expected.update(scores=("sample", "component"), residual=("sample",), residual_fraction=("sample",),
+                    flagged=("sample",))
     assert sorted(name for name, _ in group.arrays()) == sorted(expected)
     for name, dims in expected.items():
         arr = group[name]
@@ -74,8 +74,10 @@ def test_store_is_a_zarr_v3_group_with_the_documented_layout(planted, write_npy,
     assert group["component"].dtype == np.int32
     np.testing.assert_array_equal(group["component"][:], np.arange(1, RANK + 1))
     assert list(group["feature_names"][:]) == [f"f{j:02d}" for j in range(m)]
-    if "scores" in expected:
-        assert group["scores"].dtype == np.float32
+    assert group["scores"].dtype == np.float32 and group["residual"].dtype == np.float64
+    assert group["flagged"].dtype == np.bool_
+    # per-sample arrays are chunked along samples only, whole components per chunk
+    assert group["scores"].chunks[1] == RANK and group["residual"].chunks[0] == group["scores"].chunks[0]
 
     attrs = dict(group.attrs)
     assert ATTRIBUTES <= set(attrs)
@@ -108,11 +110,9 @@ def test_xarray_opens_the_store(planted, write_npy, tmp_path, route):
         np.testing.assert_array_equal(ds["loadings"].values, res.loadings)
         np.testing.assert_array_equal(ds["component"].values, np.arange(1, RANK + 1))
         assert [str(v) for v in ds["feature_names"].values] == list(res.feature_names)
-        if route in ("memory", "samples"):
-            assert ds["scores"].dims == ("sample", "component")
-            assert ds.sizes["sample"] == planted.shape[0]
-        else:
-            assert "scores" not in ds and "sample" not in ds.dims
+        assert ds["scores"].dims == ("sample", "component")
+        assert ds["residual"].dims == ds["flagged"].dims == ("sample",)
+        assert ds.sizes["sample"] == planted.shape[0]
         assert ds.attrs["route"] == route
     finally:
         ds.close()
@@ -135,12 +135,9 @@ def test_sample_ids_from_parquet_id_column(planted, write_parquet_folder, tmp_pa
     np.testing.assert_allclose(res.variance, values, rtol=1e-10)
     ds = _open_xarray(out)
     try:
-        if res.scores is None:
-            assert res.sample_ids is None and "sample_ids" not in ds
-        else:
-            assert list(res.sample_ids) == list(ids)
-            assert ds["sample_ids"].dims == ("sample",)
-            assert [str(v) for v in ds["sample_ids"].values] == list(ids)
+        assert list(res.sample_ids[:]) == list(ids)
+        assert ds["sample_ids"].dims == ("sample",)
+        assert [str(v) for v in ds["sample_ids"].values] == list(ids)
     finally:
         ds.close()
 
@@ -153,7 +150,7 @@ def test_zarr_coordinates_become_names_and_ids(planted, write_zarr, tmp_path):
     res = rankfold.decompose(path, RANK, samples_as="columns", route="samples", out=out,
                              memory_limit=limit_for_blocks(path, "samples", 4, rank=RANK, samples_as="columns"))
     assert list(res.feature_names) == names
-    np.testing.assert_array_equal(res.sample_ids, ids)
+    np.testing.assert_array_equal(res.sample_ids[:], ids)
     assert res.scores.shape == (planted.shape[0], RANK)
 
 
@@ -176,10 +173,10 @@ def test_open_result_round_trip(planted, write_parquet, tmp_path, route):
         assert list(r.feature_names) == list(mem.feature_names)
         assert r.n_samples == planted.shape[0] and r.n_features == planted.shape[1]
         np.testing.assert_allclose(r.total_variance, mem.total_variance, rtol=1e-14)
-        if mem.scores is None:
-            assert r.scores is None
-        else:  # stored as float32
-            np.testing.assert_allclose(r.scores, mem.scores, rtol=1e-6, atol=1e-6 * np.abs(mem.scores).max())
+        # scores stored as float32 (in memory float64); residuals float64
+        np.testing.assert_allclose(r.scores[:], mem.scores, rtol=1e-6, atol=1e-6 * np.abs(mem.scores).max())
+        np.testing.assert_allclose(r.residual[:], mem.residual, rtol=1e-12, atol=1e-12 * mem.residual.max())
+        np.testing.assert_array_equal(r.flagged[:], mem.flagged)
     # reference: numpy.corrcoef trace = number of features for correlation PCA
     np.testing.assert_allclose(back.total_variance, np.trace(np.corrcoef(planted, rowvar=False)), rtol=1e-12)
 

@@ -24,7 +24,7 @@ def _decompose_in_blocks(path, samples_as, route, rank, blocks=6, **kw):
     limit = limit_for_blocks(path, route, blocks, rank=rank, samples_as=samples_as)
     res = rankfold.decompose(path, rank, samples_as=samples_as, route=route, memory_limit=limit, **kw)
     assert res.route == route
-    counts = blocks_read(res)
+    counts = blocks_read(res)  # the route's passes; the scores pass reads larger blocks
     if route != "memory":
         assert min(counts) >= 3, f"expected several blocks per pass, got {counts}"
     return res
@@ -37,6 +37,11 @@ def _assert_matches(res, ref_values, ref_vectors, ref_total, *, eig_rtol=EIG_RTO
         # reference: scores are the centered (scaled) in-memory table times the loadings (numpy matmul)
         xs = (table - table.mean(axis=0)) / (table.std(axis=0, ddof=1) if standardize else 1.0)
         np.testing.assert_allclose(res.scores, xs @ res.loadings, atol=1e-9 * np.abs(res.scores).max(), rtol=0)
+        # reference: residuals are numpy's squared norm of the table minus its rank-k reconstruction
+        sumsq = np.einsum("ij,ij->i", xs, xs)
+        expected = np.sum((xs - (xs @ res.loadings) @ res.loadings.T) ** 2, axis=1)
+        np.testing.assert_allclose(res.residual, expected, atol=1e-10 * sumsq.max(), rtol=0)
+        np.testing.assert_allclose(res.residual_fraction, expected / sumsq, atol=1e-10, rtol=0)
     assert res.loadings.shape == (ref_vectors.shape[0], k)
     # reference: LAPACK via scipy.linalg.eigh (eigenvalues of numpy.cov / numpy.corrcoef)
     np.testing.assert_allclose(res.variance, ref_values, rtol=eig_rtol, atol=0)
@@ -140,8 +145,8 @@ def test_fill_mean_matches_lapack(planted, write_table, fmt, route, standardize)
     assert np.min(values[:-1] / values[1:]) > 1.05
     _assert_matches(res, values, vectors, total, angle_tol=1e-7, table=filled, standardize=standardize)
     np.testing.assert_allclose(res.center, np.nanmean(x, axis=0), rtol=1e-12, atol=1e-12)
-    if route == "features":
-        assert len(res.attrs["passes"]) == 2  # the column means need a pass of their own
+    if route == "features":  # the column means need a pass of their own; the scores one more
+        assert [p["name"] for p in res.attrs["passes"]] == ["column means", "feature Gram", "scores"]
 
 
 def _genotypes(n_samples=300, n_markers=120, seed=11):
@@ -191,8 +196,9 @@ def test_routes_give_the_same_signed_loadings(planted, write_table, fmt):
     for route in ("features", "samples"):
         np.testing.assert_allclose(results[route].loadings, base.loadings, atol=1e-9, rtol=0)
         np.testing.assert_allclose(results[route].variance, base.variance, rtol=1e-11)
-    assert results["features"].scores is None
-    np.testing.assert_allclose(results["samples"].scores, base.scores, atol=1e-8 * np.abs(base.scores).max())
+    for route in ("features", "samples"):
+        np.testing.assert_allclose(results[route].scores, base.scores, atol=1e-8 * np.abs(base.scores).max())
+        np.testing.assert_allclose(results[route].residual, base.residual, atol=1e-8 * base.residual.max())
 
 
 # ------------------------------------------------------------------ facts of the trade
@@ -213,6 +219,9 @@ def _full_rank_checks(res, x, *, standardize=False):
     if res.scores is not None:
         s = res.scores
         assert s.shape == (x.shape[0], k)
+        # common practice: with every component kept the reconstruction is exact, so no residual is left
+        xc0 = (x - x.mean(axis=0)) / (x.std(axis=0, ddof=1) if standardize else 1.0)
+        assert np.all(res.residual <= 1e-10 * np.einsum("ij,ij->i", xc0, xc0).max())
         # common practice: scores are uncorrelated, with variances equal to the component variances
         cov_s = np.cov(s, rowvar=False)
         scale = res.variance[0]
@@ -231,7 +240,7 @@ def test_all_components_tall_table(planted, write_npy, route, standardize):
     m = planted.shape[1]
     res = _decompose_in_blocks(path, "rows", route, m, standardize=standardize)
     _full_rank_checks(res, planted, standardize=standardize)
-    assert (res.scores is not None) == (route in ("memory", "samples"))
+    assert res.scores is not None  # every route writes scores unless asked not to
     # reference: LAPACK via scipy.linalg.eigh, every eigenvalue
     values, vectors, total, _ = reference_pca(planted, m, standardize=standardize)
     np.testing.assert_allclose(res.variance, values, rtol=1e-9)

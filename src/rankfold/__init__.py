@@ -10,6 +10,10 @@ plan(source, rank, ...) -> Plan
     The route, passes, memory and time a decomposition would take, from metadata only.
 open_source(path, ...) -> Source
     Open a table without reading its data (shape, names, blocks).
+project(result, source, ...) -> Projection
+    Scores, residuals and flags of new samples in an existing decomposition.
+open_projection(path) -> Projection
+    Open a projection written by :func:`project`.
 compare_subset(source, rank, ...) -> dict
     Exact against randomized components on a reproducible random subset.
 compare_results(a, b, ...) -> dict
@@ -26,6 +30,7 @@ from rankfold.errors import (
     SourceError,
     UsageError,
 )
+from rankfold.projection import Projection, open_projection, project
 from rankfold.result import Result, open_result
 from rankfold.sources import open_source
 
@@ -38,7 +43,10 @@ __all__ = [
     "compare_results",
     "open_result",
     "open_source",
+    "project",
+    "open_projection",
     "Result",
+    "Projection",
     "RankfoldError",
     "UsageError",
     "SourceError",

@@ -11,7 +11,9 @@ import numpy as np
 
 from rankfold.errors import SourceError, UsageError
 from rankfold.memory import default_memory_limit, parse_memory, return_freed_memory_promptly
-from rankfold.result import Result, check_output_path, open_result, write_result
+from rankfold.result import Result, ResultWriter, check_output_path, open_result
+from rankfold.routes import scores as scores_stage
+from rankfold.sample_outputs import DEFAULT_FLAG_THRESHOLD, SCORE_DTYPES, FlagRule, chunk_rows, flag_rule
 from rankfold.machine import MachineSpeed, machine_speed
 from rankfold.planner import Plan, PlanRequest, make_plan
 from rankfold.routes import ROUTES
@@ -25,7 +27,6 @@ ACCURACY = ("exact", "approximate")
 MAX_OVERSAMPLE = 1000
 MAX_POWER_ITERATIONS = 50
 FEATURE_CHUNK = 65536
-SAMPLE_CHUNK = 65536
 
 
 def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False, columns=None,
@@ -33,7 +34,8 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
               seed: int = 0, exclude=None, id_column: str | None = None,
               missing_code: float | None = None, array: str | None = None, overwrite: bool = False,
               progress: ProgressCallback | None = None, accuracy: str = "exact", oversample: int = 10,
-              power_iterations: int = 2, sketch: str = "subspace",
+              power_iterations: int = 2, sketch: str = "subspace", scores: bool = True,
+              scores_dtype: str = "float32", flag_threshold: float = DEFAULT_FLAG_THRESHOLD,
               on_plan=None, speed: MachineSpeed | None = None) -> Result:
     """Leading principal components of a table, streamed in blocks within a memory ceiling.
 
@@ -84,6 +86,16 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
         Passes of subspace iteration (randomized route; default 2).
     sketch : {"subspace", "krylov", "one-pass"}
         Randomized method; see :mod:`rankfold.routes.sketch`.
+    scores : bool
+        Write every sample's scores, squared reconstruction residual, residual
+        fraction and outlier flag (default).  Routes that do not produce scores
+        on the way read the data once more; the plan counts it.
+    scores_dtype : {"float32", "float64"}
+        Dtype of the stored scores (float32 halves their size; in-memory
+        results without ``out`` keep float64).
+    flag_threshold : float
+        Samples whose residual exceeds ``median + flag_threshold * 1.4826 * MAD``
+        are flagged (:mod:`rankfold.sample_outputs`); default 3.5.
     on_plan : callable, optional
         Called with the :class:`~rankfold.planner.Plan` before any data is read.
     speed : MachineSpeed, optional
@@ -93,7 +105,7 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
     -------
     Result
         Loadings (m, k), variances (k,), variance fractions, center and scale,
-        feature names, scores when the route gives them, and attributes.
+        feature names, per-sample scores (n, k), residuals and flags, and attributes.
 
     Raises
     ------
@@ -115,6 +127,8 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
                          "sketch='subspace' (one extra pass)")
     _check_choice("missing", missing, MISSING_POLICIES)
     _check_choice("route", route, ROUTE_NAMES)
+    _check_choice("scores_dtype", scores_dtype, SCORE_DTYPES)
+    _check_threshold(flag_threshold)
     if isinstance(rank, bool) or not isinstance(rank, (int, np.integer)):
         raise UsageError(f"rank must be a whole number, got {rank!r}")
     _check_count("seed", seed, 0, 2**63 - 1)
@@ -132,39 +146,97 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
         _check_rank(src, rank)
         chosen = make_plan(plan_request(src, rank, limit, route=route, accuracy=accuracy, oversample=oversample,
                                         power_iterations=power_iterations, sketch=sketch, missing=missing,
-                                        standardize=standardize), speed or machine_speed())
+                                        standardize=standardize, scores=bool(scores),
+                                        scratch_free=_free_disk(out), outputs_held=out is None),
+                           speed or machine_speed())
         if on_plan is not None:
             on_plan(chosen)
-        route, reasons = chosen.route, chosen.reasons
-        t0 = time.perf_counter()
-        inp = RouteInput(src, int(rank), bool(standardize), missing, limit, progress, int(oversample),
-                         int(power_iterations), sketch, int(seed))
-        dec = ROUTES[route].run(inp)
-        seconds = time.perf_counter() - t0
         params = {"rank": int(rank), "standardize": bool(standardize), "missing": missing,
-                  "missing_code": missing_code, "samples_as": samples_as, "route": route,
+                  "missing_code": missing_code, "samples_as": samples_as, "route": chosen.route,
                   "memory_limit": int(limit), "seed": int(seed),
                   "columns": list(columns) if columns else None,
                   "exclude": list(exclude) if exclude else None, "id_column": id_column,
                   "accuracy": accuracy, "oversample": int(oversample),
-                  "power_iterations": int(power_iterations), "sketch": sketch}
-        attrs = _attributes(src, dec, params, reasons, seconds)
-        attrs["plan"] = {"estimated_seconds": round(chosen.estimate.seconds, 3),
-                         "estimated_peak_memory": int(chosen.estimate.peak_memory),
-                         "passes": chosen.estimate.passes, "bytes_read": chosen.estimate.bytes_read}
-        # Ids go with scores; reading an id column of a billion rows for nothing would
-        # break the memory ceiling, so they are read only when scores are stored.
-        sample_ids = None
-        if dec.scores is not None:
-            sample_ids = src.read_sample_ids()
-        if out is None:
-            return Result(None, dec.loadings, dec.variance, dec.variance / dec.total_variance, dec.center,
-                          dec.scale, np.asarray(src.feature_names), dec.scores, sample_ids, attrs)
-        write_result(out, _arrays(src, dec, sample_ids), attrs, overwrite)
-        return open_result(out)
+                  "power_iterations": int(power_iterations), "sketch": sketch, "scores": bool(scores),
+                  "scores_dtype": scores_dtype, "flag_threshold": float(flag_threshold)}
+        writer = ResultWriter(out, overwrite) if out is not None else None
+        try:
+            inp = RouteInput(src, int(rank), bool(standardize), missing, limit, progress, int(oversample),
+                             int(power_iterations), sketch, int(seed), scores=bool(scores),
+                             scratch=writer.scratch_folder() if writer else None, outputs_held=writer is None)
+            return _run(inp, chosen, params, writer, scores_dtype, float(flag_threshold))
+        except BaseException:
+            if writer is not None:
+                writer.abandon()
+            raise
     finally:
         if not opened:
             src.close()
+
+
+def _run(inp: RouteInput, chosen: Plan, params: dict, writer: ResultWriter | None, scores_dtype: str,
+         flag_threshold: float) -> Result:
+    """Run the chosen route and the per-sample stage; store or return the result."""
+    src = inp.source
+    t0 = time.perf_counter()
+    dec = ROUTES[chosen.route].run(inp)
+    per_sample, flag, sample_ids = {}, None, None
+    if inp.scores:
+        per_sample, flag = _sample_outputs(dec, inp, writer, scores_dtype, flag_threshold)
+        # Ids go with scores; reading an id column of a billion rows for nothing would
+        # break the memory ceiling, so they are read only when scores are stored.
+        sample_ids = src.read_sample_ids()
+    elif dec.parts.tall is not None:
+        dec.parts.tall.remove()
+    seconds = time.perf_counter() - t0
+    attrs = _attributes(src, dec, params, chosen.reasons, seconds)
+    attrs["plan"] = {"estimated_seconds": round(chosen.estimate.seconds, 3),
+                     "estimated_peak_memory": int(chosen.estimate.peak_memory),
+                     "passes": chosen.estimate.passes, "bytes_read": chosen.estimate.bytes_read}
+    if flag is not None:
+        attrs["residual_flag"] = flag.as_dict()
+    if writer is None:
+        return Result(None, dec.loadings, dec.variance, dec.variance / dec.total_variance, dec.center,
+                      dec.scale, np.asarray(src.feature_names), per_sample.get("scores"), sample_ids, attrs,
+                      per_sample.get("residual"), per_sample.get("residual_fraction"), per_sample.get("flagged"))
+    with writer:
+        for name, (data, dims, chunks) in _arrays(src, dec, sample_ids).items():
+            writer.add(name, data, dims, chunks)
+        writer.commit(attrs)
+    return open_result(writer.out)
+
+
+def _sample_outputs(dec: Decomposition, inp: RouteInput, writer: ResultWriter | None, scores_dtype: str,
+                    flag_threshold: float) -> tuple[dict, FlagRule]:
+    """Scores, residuals and flags, into the store under construction or into memory."""
+    n, k = dec.n_samples, dec.loadings.shape[1]
+    chunk = chunk_rows(n, k)
+    if writer is None:
+        arrays = {"scores": np.empty((n, k)), "residual": np.empty(n), "residual_fraction": np.empty(n)}
+        every = scores_stage.write(dec, inp, arrays, np.float64)
+        rule = flag_rule(every, flag_threshold)
+        arrays["flagged"] = every > rule.cutoff
+        return arrays, rule
+    with writer:  # a failed write (a full disk) becomes an OutputError and removes the partial store
+        arrays = {"scores": writer.create("scores", (n, k), scores_dtype, ("sample", "component"), (chunk, k)),
+                  "residual": writer.create("residual", (n,), "float64", ("sample",), (chunk,)),
+                  "residual_fraction": writer.create("residual_fraction", (n,), "float64", ("sample",), (chunk,))}
+        every = scores_stage.write(dec, inp, arrays, np.dtype(scores_dtype))
+        rule = flag_rule(every, flag_threshold)
+        writer.add("flagged", every > rule.cutoff, ("sample",), (chunk,))
+    return {}, rule
+
+
+def _free_disk(out) -> int | None:
+    """Free bytes in the folder that will hold the output and its scratch arrays."""
+    import shutil
+
+    if out is None:
+        return None
+    try:
+        return shutil.disk_usage(os.path.dirname(os.path.abspath(out))).free
+    except OSError:
+        return None
 
 
 def plan_request(src: Source, rank: int, limit: int, **options) -> PlanRequest:
@@ -184,7 +256,7 @@ def plan_request(src: Source, rank: int, limit: int, **options) -> PlanRequest:
 def plan(source, rank: int, *, memory_limit=None, standardize: bool = False, columns=None,
          samples_as: str = "rows", missing: str = "refuse", route: str = "auto", exclude=None,
          missing_code: float | None = None, array: str | None = None, accuracy: str = "exact",
-         oversample: int = 10, power_iterations: int = 2, sketch: str = "subspace",
+         oversample: int = 10, power_iterations: int = 2, sketch: str = "subspace", scores: bool = True,
          speed: MachineSpeed | None = None) -> Plan:
     """The plan :func:`decompose` would follow, from the source's metadata only.
 
@@ -206,7 +278,7 @@ def plan(source, rank: int, *, memory_limit=None, standardize: bool = False, col
         _check_rank(src, rank)
         return make_plan(plan_request(src, rank, limit, route=route, accuracy=accuracy, oversample=oversample,
                                       power_iterations=power_iterations, sketch=sketch, missing=missing,
-                                      standardize=standardize), speed or machine_speed())
+                                      standardize=standardize, scores=bool(scores)), speed or machine_speed())
     finally:
         if src is not source:
             src.close()
@@ -215,6 +287,12 @@ def plan(source, rank: int, *, memory_limit=None, standardize: bool = False, col
 def _check_choice(name: str, value, allowed) -> None:
     if value not in allowed:
         raise UsageError(f"{name} must be one of {', '.join(allowed)}; got {value!r}")
+
+
+def _check_threshold(value) -> None:
+    if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)) \
+            or not np.isfinite(value) or value <= 0:
+        raise UsageError(f"flag_threshold must be a positive number of robust standard deviations; got {value!r}")
 
 
 def _check_count(name: str, value, low: int, high: int) -> None:
@@ -247,9 +325,7 @@ def _arrays(src: Source, dec: Decomposition, sample_ids) -> dict:
         "feature_names": (np.asarray(src.feature_names, dtype=str), ("feature",), fchunk),
         "component": (np.arange(1, k + 1, dtype=np.int32), ("component",), None),
     }
-    schunk = (min(SAMPLE_CHUNK, src.n_samples),)
-    if dec.scores is not None:
-        arrays["scores"] = (dec.scores.astype(np.float32), ("sample", "component"), schunk + (k,))
+    schunk = (chunk_rows(src.n_samples, k),)
     if sample_ids is not None and len(sample_ids) == src.n_samples:
         ids = np.asarray(sample_ids)
         arrays["sample_ids"] = (ids.astype(str) if ids.dtype.kind in "OUS" else ids, ("sample",), schunk)

@@ -32,14 +32,33 @@ def _parser() -> argparse.ArgumentParser:
     d.add_argument("--id-column", metavar="NAME", help="Parquet column kept as sample ids")
     _planning_options(d)
     d.add_argument("--seed", type=int, default=0, help="seed of the random test matrix (randomized route)")
+    d.add_argument("--no-scores", dest="scores", action="store_false",
+                   help="skip the per-sample outputs (scores, residuals, flags); saves a pass on some routes")
+    d.add_argument("--scores-dtype", choices=("float32", "float64"), default="float32",
+                   help="dtype of the stored scores (default float32)")
+    d.add_argument("--flag-threshold", type=float, default=3.5, metavar="T",
+                   help="flag samples whose residual exceeds median + T x 1.4826 x MAD (default 3.5)")
     d.add_argument("--overwrite", action="store_true", help="replace an existing result store")
     d.add_argument("--quiet", "-q", action="store_true", help="print nothing but errors")
 
     p = sub.add_parser("plan", help="say which route would run, its passes, memory and time, without reading data")
     p.add_argument("source", metavar="SOURCE", help="Parquet file or folder, Zarr array or group, or .npy file")
     p.add_argument("--rank", "-k", type=int, required=True, help="number of components to keep")
+    p.add_argument("--no-scores", dest="scores", action="store_false", help="plan without the per-sample outputs")
     _source_options(p)
     _planning_options(p)
+
+    j = sub.add_parser("project", help="place new samples into an existing decomposition")
+    j.add_argument("result", metavar="RESULT.zarr")
+    j.add_argument("source", metavar="SOURCE", help="table holding every feature of the result, by name")
+    j.add_argument("--out", "-o", required=True, metavar="SCORES", help="Zarr group, or Parquet file with --format parquet")
+    j.add_argument("--format", choices=("zarr", "parquet"), default="zarr", help="output format (default zarr)")
+    j.add_argument("--memory-limit", metavar="SIZE", help="ceiling for blocks and buffers (default: 60%% of available)")
+    j.add_argument("--scores-dtype", choices=("float32", "float64"), default="float32")
+    j.add_argument("--id-column", metavar="NAME", help="Parquet id column (default: the one the result used)")
+    j.add_argument("--array", metavar="NAME", help="array inside a Zarr group")
+    j.add_argument("--overwrite", action="store_true", help="replace an earlier projection at --out")
+    j.add_argument("--quiet", "-q", action="store_true", help="print nothing but errors")
 
     s = sub.add_parser("show", help="print a result's components, route and timings")
     s.add_argument("result", metavar="RESULT.zarr")
@@ -136,7 +155,8 @@ def _decompose(args) -> int:
             print("\n".join(plan.lines()), file=sys.stderr)
 
     result = decompose(args.source, args.rank, id_column=args.id_column, seed=args.seed, out=args.out,
-                       overwrite=args.overwrite, progress=progress, on_plan=show_plan, **_common(args))
+                       overwrite=args.overwrite, progress=progress, on_plan=show_plan, scores=args.scores,
+                       scores_dtype=args.scores_dtype, flag_threshold=args.flag_threshold, **_common(args))
     if not args.quiet:
         print("\n".join(describe_result(result)))
     return 0
@@ -145,7 +165,25 @@ def _decompose(args) -> int:
 def _plan(args) -> int:
     from rankfold.api import plan
 
-    print("\n".join(plan(args.source, args.rank, **_common(args)).lines()))
+    print("\n".join(plan(args.source, args.rank, scores=args.scores, **_common(args)).lines()))
+    return 0
+
+
+def _project(args) -> int:
+    import warnings
+
+    from rankfold.projection import project
+    from rankfold.report import describe_projection
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        done = project(args.result, args.source, out=args.out, format=args.format, memory_limit=args.memory_limit,
+                       scores_dtype=args.scores_dtype, id_column=args.id_column, array=args.array,
+                       overwrite=args.overwrite)
+    for w in caught:
+        print(f"rankfold: warning: {w.message}", file=sys.stderr)
+    if not args.quiet:
+        print("\n".join(describe_projection(done)))
     return 0
 
 
@@ -186,7 +224,8 @@ def _compare(args) -> int:
     return 0
 
 
-COMMANDS = {"decompose": _decompose, "plan": _plan, "show": _show, "demo": _demo, "compare": _compare}
+COMMANDS = {"decompose": _decompose, "plan": _plan, "project": _project, "show": _show, "demo": _demo,
+            "compare": _compare}
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -21,6 +21,7 @@ from rankfold.errors import MemoryLimitError
 from rankfold.machine import MachineSpeed
 from rankfold.memory import format_bytes
 from rankfold.routes import features, memory, samples, sketch
+from rankfold.sample_outputs import TallProduct, buffer_bytes, held_bytes, scratch_chunk_bytes, writer_bytes
 
 EXACT = ("memory", "features", "samples")
 # Above this many values an SVD of the whole table costs more than it is worth
@@ -57,6 +58,9 @@ class PlanRequest:
     sketch: str = "subspace"
     missing: str = "refuse"
     standardize: bool = False
+    scores: bool = True
+    scratch_free: int | None = None  # free bytes where scratch arrays would go (None: not checked)
+    outputs_held: bool = False  # per-sample outputs returned in memory rather than written to a store
 
 
 @dataclass(frozen=True)
@@ -95,7 +99,8 @@ class Plan:
             f"plan     {self.route} route, reading blocks of {e.block_units:,} {e.axis}",
             f"passes   {_passes(e.passes)} over the data, {format_bytes(e.bytes_read)} read in all",
             f"work     {e.flops / 1e9:,.1f} GFLOP",
-            f"memory   peak about {format_bytes(e.peak_memory)} of the {format_bytes(r.memory_limit)} limit",
+            f"memory   peak about {format_bytes(e.peak_memory)} of the {format_bytes(r.memory_limit)} limit"
+            + (f"; {format_bytes(e.scratch_bytes)} of scratch disk beside the output" if e.scratch_bytes else ""),
             f"time     about {_duration(e.seconds)} on a warm page cache (read {format_bytes(self.speed.read_bytes_per_s)}/s, "
             f"GEMM {self.speed.gemm_flops_per_s / 1e9:.0f} GFLOP/s; {self.speed.measured})",
         ]
@@ -125,9 +130,11 @@ def _duration(seconds: float) -> str:
 def _estimate(route: str, req: PlanRequest, speed: MachineSpeed) -> RouteEstimate:
     n, m, k = req.n_samples, req.n_features, req.rank
     read_pass = req.table_bytes / speed.read_bytes_per_s
+    scratch = 0
     gemm = speed.gemm_flops_per_s
+    outputs = (buffer_bytes(n, k) + (held_bytes(n, k) if req.outputs_held else 0)) if req.scores else 0
     if route == "memory":
-        fixed = memory.fixed_bytes(n, m, k)
+        fixed = memory.fixed_bytes(n, m, k) + outputs
         flops = 4.0 * n * m * min(n, m) + 3.0 * n * m
         fits = fixed <= req.memory_limit
         return RouteEstimate("memory", "samples", fits, 1, req.table_bytes, flops, fixed, n,
@@ -136,6 +143,8 @@ def _estimate(route: str, req: PlanRequest, speed: MachineSpeed) -> RouteEstimat
         axis, fixed = "samples", features.fixed_bytes(n, m, k)
         passes = 2 if req.missing == "fill-mean" else 1
         per_pass = [2.0 * n * m * m] + ([3.0 * n * m] if passes == 2 else [])
+        if req.scores:
+            per_pass.append(2.0 * n * m * k)  # the scores pass
         final = 10.0 * m ** 3
     elif route == "samples":
         axis, fixed = "features", samples.fixed_bytes(n, m, k)
@@ -150,17 +159,29 @@ def _estimate(route: str, req: PlanRequest, speed: MachineSpeed) -> RouteEstimat
         passes = sketch.passes(req.power_iterations, req.sketch)
         apply = 4.0 * n * m * (k + req.oversample)
         if req.sketch == "one-pass":
-            per_pass = [apply] + ([2.0 * n * m * k] if axis == "features" else [])
+            per_pass = [apply] + ([2.0 * n * m * k] if axis == "features" or req.scores else [])
             passes = len(per_pass)
         else:
             per_pass = [3.0 * n * m] + [apply] * req.power_iterations
             per_pass.append(4.0 * n * m * (width + sketch.TEST_VECTORS))
+            if axis == "samples" and sketch.fuses_moments(req.standardize, req.missing, req.power_iterations,
+                                                          req.sketch):
+                per_pass = per_pass[1:]  # the moments ride along with the first power iteration
+                passes -= 1
             if axis == "features":
                 per_pass[0] = apply  # no moments pass; the last pass recovers loadings instead
                 per_pass.append(2.0 * n * m * k)
                 per_pass = per_pass[:passes]
         final = 10.0 * width ** 3 + 4.0 * size * width ** 2 * (req.power_iterations + 1)
-    fixed += req.read_fixed_bytes[axis]
+        if req.scores and axis == "samples" and req.sketch != "one-pass":
+            # The last pass keeps Xc Q (n x width) for the scores: in memory, or on scratch disk.
+            if sketch.tall_fits_in_memory(n, width, req.memory_limit):
+                fixed += TallProduct.bytes_needed(n, width)
+            else:
+                fixed += writer_bytes(n, width + 1, scratch_chunk_bytes(req.memory_limit))
+                scratch = TallProduct.bytes_needed(n, width)
+            final += 2.0 * n * width * k
+    fixed += outputs + req.read_fixed_bytes[axis]
     need = fixed + req.min_block_bytes[axis]
     fits = need <= req.memory_limit
     unit = req.bytes_per_unit[axis]
@@ -170,10 +191,17 @@ def _estimate(route: str, req: PlanRequest, speed: MachineSpeed) -> RouteEstimat
     if align > 1 and align <= units < length:
         units -= units % align  # sources cut blocks at whole storage chunks
     peak = fixed + min(units, length) * unit if fits else need
-    seconds = sum(max(read_pass, f / gemm) for f in per_pass) + final / gemm
+    # Scratch is written once during the last pass and read back once.
+    seconds = sum(max(read_pass, f / gemm) for f in per_pass) + final / gemm + 2 * scratch / speed.read_bytes_per_s
+    if fits and req.scratch_free is not None and scratch > req.scratch_free:
+        fits = False
+        need_note = (f"needs {format_bytes(scratch)} of scratch disk beside the output for the scores, "
+                     f"and {format_bytes(req.scratch_free)} is free")
+    else:
+        need_note = "" if fits else f"needs at least {format_bytes(need)}"
     return RouteEstimate(route, axis, fits, len(per_pass), int(req.table_bytes * len(per_pass)),
-                         sum(per_pass) + final, int(peak), int(units), seconds,
-                         note="" if fits else f"needs at least {format_bytes(need)}")
+                         sum(per_pass) + final, int(peak), int(units), seconds, scratch_bytes=int(scratch),
+                         note=need_note)
 
 
 def make_plan(req: PlanRequest, speed: MachineSpeed) -> Plan:

@@ -62,16 +62,18 @@ def orthonormalize(z: np.ndarray, against: np.ndarray | None = None) -> np.ndarr
     return q
 
 
-def rayleigh_ritz(basis: np.ndarray, product: np.ndarray, rank: int) -> tuple[np.ndarray, np.ndarray]:
+def rayleigh_ritz(basis: np.ndarray, product: np.ndarray, rank: int, coefficients: bool = False) -> tuple:
     """Top ``rank`` Ritz pairs of an operator ``A`` from ``basis`` and ``product = A @ basis``.
 
-    Returns descending Ritz values and the Ritz vectors ``basis @ w``.
+    Returns descending Ritz values and the Ritz vectors ``basis @ w``, and the
+    coefficients ``w`` (width x rank) as well when ``coefficients`` is true.
     """
     t = basis.T @ product
     t = (t + t.T) / 2  # symmetric in exact arithmetic
     values, vectors = scipy.linalg.eigh(t)
     order = np.argsort(values)[::-1][:rank]
-    return values[order], basis @ vectors[:, order]
+    w = vectors[:, order]
+    return (values[order], basis @ w, w) if coefficients else (values[order], basis @ w)
 
 
 def nystrom(test: np.ndarray, sketch: np.ndarray, rank: int) -> tuple[np.ndarray, np.ndarray]:

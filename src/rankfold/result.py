@@ -11,8 +11,14 @@ Layout (dimension names in brackets, so that ``xarray.open_zarr`` reads it)::
       scale                float64 [feature]     divisors (standard deviations, or ones)
       feature_names        string  [feature]
       component            int32   [component]   1, 2, ... (a coordinate for xarray)
-      scores               float32 [sample, component]  when the route gives them for free
+      scores               float32 [sample, component]  (float64 on request; absent with --no-scores)
+      residual             float64 [sample]       squared distance to the rank-k reconstruction
+      residual_fraction    float64 [sample]       residual / squared norm of the centered sample
+      flagged              bool    [sample]       residual above the robust cutoff (attrs residual_flag)
       sample_ids           [sample]               beside scores, when the source has ids
+
+Per-sample arrays are chunked along samples only, and written a whole chunk
+at a time while the last pass runs (:mod:`rankfold.sample_outputs`).
 
 A store that is being written lives at ``.NAME.partial-PID`` beside the target
 and only becomes ``NAME`` once every array and attribute is on disk, so a
@@ -49,8 +55,13 @@ class Result:
     center, scale : ndarray, shape (m,)
         The transformation applied before decomposing: ``(x - center) / scale``.
     feature_names : ndarray of str, shape (m,)
-    scores : ndarray, shape (n, k), or None
-    sample_ids : ndarray, shape (n,), or None
+    scores : array, shape (n, k), or None
+    sample_ids : array, shape (n,), or None
+    residual, residual_fraction : array, shape (n,), or None
+    flagged : array of bool, shape (n,), or None
+        Per-sample outputs (:mod:`rankfold.sample_outputs`).  Read from a store
+        they are Zarr arrays, read lazily: index them (``result.scores[:1000]``,
+        ``result.residual[:]``) to get numpy arrays.
     attrs : dict
         Route, rank, counts, total variance, parameters, source fingerprint,
         library versions and per-pass timings.
@@ -66,6 +77,9 @@ class Result:
     scores: np.ndarray | None
     sample_ids: np.ndarray | None
     attrs: dict
+    residual: np.ndarray | None = None
+    residual_fraction: np.ndarray | None = None
+    flagged: np.ndarray | None = None
 
     @property
     def route(self) -> str:
@@ -86,6 +100,12 @@ class Result:
     @property
     def n_features(self) -> int:
         return int(self.attrs["n_features"])
+
+    def project(self, source, out=None, **options):
+        """Place the samples of ``source`` in these components; see :func:`rankfold.projection.project`."""
+        from rankfold.projection import project
+
+        return project(self, source, out=out, **options)
 
 
 def open_result(path: str) -> Result:
@@ -115,8 +135,12 @@ def open_result(path: str) -> Result:
     def get(name):
         return group[name][:] if name in group else None
 
+    def lazy(name):  # per-sample arrays can be far larger than memory
+        return group[name] if name in group else None
+
     return Result(path, get("loadings"), get("variance"), get("variance_fraction"), get("center"),
-                  get("scale"), get("feature_names"), get("scores"), get("sample_ids"), attrs)
+                  get("scale"), get("feature_names"), lazy("scores"), lazy("sample_ids"), attrs,
+                  lazy("residual"), lazy("residual_fraction"), lazy("flagged"))
 
 
 def check_output_path(out: str, overwrite: bool) -> None:
@@ -153,37 +177,87 @@ def _is_result(path: str) -> bool:
     return FORMAT_KEY in attrs or "route" in attrs
 
 
-def write_result(out: str, arrays: dict, attrs: dict, overwrite: bool) -> None:
-    """Write ``arrays`` (name -> (data, dims, chunks)) and ``attrs`` atomically to ``out``."""
-    import zarr
+class ResultWriter:
+    """A result store under construction at ``.NAME.partial-PID``; :meth:`commit` renames it to ``NAME``.
 
-    check_output_path(out, overwrite)
-    parent, name = os.path.split(os.path.abspath(out))
-    tmp = os.path.join(parent, f".{name}.partial-{os.getpid()}")
-    _remove(tmp)
-    try:
-        group = zarr.open_group(tmp, mode="w", zarr_format=3)
-        for key, (data, dims, chunks) in arrays.items():
-            data = np.asarray(data)
-            dtype = str if data.dtype.kind in "OUS" else data.dtype
-            arr = group.create_array(key, shape=data.shape, dtype=dtype, chunks=chunks or data.shape or None,
-                                     dimension_names=dims)
-            arr[...] = data.astype(str) if dtype is str else data
-        group.attrs.update(attrs)
-        group.attrs[FORMAT_KEY] = FORMAT_VERSION  # written last: marks the store complete
+    Large per-sample arrays are created early with :meth:`create` and filled
+    while a pass runs; small arrays are added with :meth:`add`.  Until
+    :meth:`commit`, nothing exists under the requested name; :meth:`abandon`
+    removes the partial store.
+    """
+
+    def __init__(self, out: str, overwrite: bool, marker: tuple[str, int] = (FORMAT_KEY, FORMAT_VERSION),
+                 checked: bool = True):
+        import zarr
+
+        if checked:
+            check_output_path(out, overwrite)
+        self.out, self.overwrite, self.marker, self.checked = out, overwrite, marker, checked
+        parent, name = os.path.split(os.path.abspath(out))
+        self.tmp = os.path.join(parent, f".{name}.partial-{os.getpid()}")
+        _remove(self.tmp)
+        try:
+            self.group = zarr.open_group(self.tmp, mode="w", zarr_format=3)
+        except OSError as exc:
+            self.abandon()
+            raise OutputError(f"{out}: cannot write the result ({exc.strerror or exc}); nothing was left behind") from None
+
+    def scratch_folder(self) -> str:
+        """A folder beside the output for scratch arrays, removed by commit or abandon."""
+        parent, name = os.path.split(os.path.abspath(self.out))
+        return os.path.join(parent, f".{name}.scratch-{os.getpid()}")
+
+    def create(self, name: str, shape: tuple, dtype, dims: tuple, chunks: tuple):
+        """An empty array to be filled in whole chunks."""
+        return self.group.create_array(name, shape=shape, dtype=dtype, chunks=chunks, dimension_names=dims)
+
+    def add(self, name: str, data, dims: tuple, chunks: tuple | None = None) -> None:
+        data = np.asarray(data)
+        dtype = str if data.dtype.kind in "OUS" else data.dtype
+        arr = self.group.create_array(name, shape=data.shape, dtype=dtype, chunks=chunks or data.shape or None,
+                                      dimension_names=dims)
+        arr[...] = data.astype(str) if dtype is str else data
+
+    def commit(self, attrs: dict) -> None:
+        """Write the attributes, mark the store complete, and move it to its name."""
+        out = self.out
+        parent, name = os.path.split(os.path.abspath(out))
+        self.group.attrs.update(attrs)
+        key, version = self.marker
+        self.group.attrs[key] = version  # written last: marks the store complete
         if os.path.exists(out):
+            if self.checked:
+                check_output_path(out, self.overwrite)
             trash = os.path.join(parent, f".{name}.replaced-{os.getpid()}")
             os.rename(out, trash)
-            os.rename(tmp, out)
+            os.rename(self.tmp, out)
             _remove(trash)
         else:
-            os.rename(tmp, out)
-    except OSError as exc:
-        _remove(tmp)
-        raise OutputError(f"{out}: cannot write the result ({exc.strerror or exc}); nothing was left behind") from None
-    except BaseException:
-        _remove(tmp)
-        raise
+            os.rename(self.tmp, out)
+        _remove(self.scratch_folder())
+
+    def abandon(self) -> None:
+        _remove(self.tmp)
+        _remove(self.scratch_folder())
+
+    def __enter__(self) -> "ResultWriter":
+        return self
+
+    def __exit__(self, kind, exc, tb) -> None:
+        if kind is None:
+            return
+        self.abandon()
+        if issubclass(kind, OSError):
+            raise OutputError(f"{self.out}: cannot write the result ({exc.strerror or exc}); "
+                              "nothing was left behind") from None
+
+
+def write_result(out: str, arrays: dict, attrs: dict, overwrite: bool) -> None:
+    """Write ``arrays`` (name -> (data, dims, chunks)) and ``attrs`` atomically to ``out``."""
+    with ResultWriter(out, overwrite) as writer:
+        for key, (data, dims, chunks) in arrays.items():
+            writer.add(key, data, dims, chunks)
+        writer.commit(attrs)
 
 
 def _remove(path: str) -> None:

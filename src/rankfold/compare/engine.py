@@ -120,7 +120,8 @@ def compare_subset(source, rank: int, *, subset=0.05, feature_subset=None, setti
                             f"{draw.rows.size} samples, fewer than the {needed} that rank {rank} plus "
                             f"oversampling needs; use --subset {_percent(smallest_fraction(n, needed))} "
                             "or more, or another --seed")
-        options = dict(standardize=standardize, missing=missing, seed=seed)
+        # Scores are computed here from the loadings, on the subset, so the runs skip their own.
+        options = dict(standardize=standardize, missing=missing, seed=seed, scores=False)
         if folder is None:
             scratch_parent = tempfile.mkdtemp(prefix="rankfold-compare-")
             try:
@@ -294,6 +295,7 @@ def _full_table_estimate(src: Source, rank: int, params: dict, limit: int, optio
     from rankfold.api import plan
 
     try:
+        # The full run writes scores (the default), so the estimate includes them.
         p = plan(src, rank, memory_limit=limit, standardize=options["standardize"], missing=options["missing"],
                  route="sketch", sketch=params["sketch"], oversample=params["oversample"],
                  power_iterations=params["power_iterations"])

@@ -220,4 +220,41 @@ def summarize_fleet(result, truth: FleetTruth, top: int = 6) -> list[str]:
     if truth.drifting_machines:
         lines.append(f"machines given a late fault: {', '.join(truth.drifting_machines)} "
                      "(their late records should stand out by reconstruction error)")
+        lines += _residual_lines(result, truth)
     return lines
+
+
+def machine_residuals(result, truth: FleetTruth) -> list[tuple[str, int, float]]:
+    """Per machine: flagged records and largest squared residual, most flagged first.
+
+    Record ids are ``MACHINE-NUMBER`` (:mod:`rankfold.demo.fleet`); the
+    residuals and flags come from the result's per-sample arrays.
+    """
+    ids = np.asarray(result.sample_ids[:]).tolist()  # numpy's variable-width strings: go through Python str
+    residual = np.asarray(result.residual[:])
+    flagged = np.asarray(result.flagged[:])
+    machine = np.array([str(i).rsplit("-", 1)[0] for i in ids])
+    rows = []
+    for name in truth.machine_ids:
+        mine = machine == name
+        rows.append((name, int(flagged[mine].sum()), float(residual[mine].max(initial=0.0))))
+    rows.sort(key=lambda r: (-r[1], -r[2]))
+    return rows
+
+
+def _residual_lines(result, truth: FleetTruth) -> list[str]:
+    if getattr(result, "residual", None) is None or getattr(result, "sample_ids", None) is None:
+        return ["(no per-sample residuals in this result: run without --no-scores to rank machines)"]
+    ranked = machine_residuals(result, truth)
+    planted = set(truth.drifting_machines)
+    shown = ranked[:len(planted) + 2]
+    lines = ["", "machines ranked by records flagged for a large reconstruction error:",
+             f"  {'machine':>8}  {'flagged':>8}  {'largest residual':>16}"]
+    for name, count, worst in shown:
+        mark = "  <- given a late fault" if name in planted else ""
+        lines.append(f"  {name:>8}  {count:>8,}  {worst:>16.4g}{mark}")
+    top = {name for name, _, _ in ranked[:len(planted)]}
+    verdict = ("the machines given a late fault are exactly the top " + str(len(planted))
+               if top == planted else
+               f"only {len(top & planted)} of the {len(planted)} machines given a late fault are in the top {len(planted)}")
+    return lines + [verdict]

@@ -139,15 +139,20 @@ class FeatureProjection(FoldState):
         ``U / sqrt(lambda)``, the left singular vectors over singular values.
     center, scale : ndarray, shape (m,)
         From the first pass, so that every block is centered identically.
+    scores : bool
+        Also fold ``Xc^T (Xc W)`` (n x k), the scores of the unnormalized
+        loadings, for routes that re-orthonormalize the loadings afterwards.
     """
 
-    _fields = ("weights", "center", "scale", "loadings")
+    _fields = ("weights", "center", "scale", "loadings", "sample_sumsq", "sample_product")
 
-    def __init__(self, weights: np.ndarray, center: np.ndarray, scale: np.ndarray):
+    def __init__(self, weights: np.ndarray, center: np.ndarray, scale: np.ndarray, scores: bool = False):
         self.weights = weights
         self.center = center
         self.scale = scale
         self.loadings = np.zeros((center.shape[0], weights.shape[1]))
+        self.sample_sumsq = np.zeros(weights.shape[0])  # each sample's centered squared norm, for residuals
+        self.sample_product = np.zeros(weights.shape) if scores else np.zeros((0, weights.shape[1]))
 
     def update(self, block: np.ndarray, start: int = 0) -> "FeatureProjection":
         stop = start + block.shape[0]
@@ -155,8 +160,13 @@ class FeatureProjection(FoldState):
         block[np.isnan(block)] = 0.0
         block /= self.scale[start:stop, None]
         self.loadings[start:stop] = block @ self.weights
+        self.sample_sumsq += np.einsum("ij,ij->j", block, block)
+        if self.sample_product.shape[0]:
+            self.sample_product += block.T @ self.loadings[start:stop]
         return self
 
     def merge(self, other: "FeatureProjection") -> "FeatureProjection":
         self.loadings += other.loadings  # disjoint feature ranges: the rest are zeros
+        self.sample_sumsq += other.sample_sumsq
+        self.sample_product += other.sample_product
         return self

@@ -36,6 +36,12 @@ class CovarianceProduct(FoldState):
     basis : ndarray, shape (m, w)
     center, scale : ndarray, shape (m,)
         Column means and divisors from the moments pass.
+    capture : callable, optional
+        Receives ``(start, Y, sumsq)`` for every slab: the thin product
+        ``Y = B Q`` restricted to its first ``capture_width`` columns and each
+        row's squared norm.  The randomized route keeps them from its last
+        pass to form the scores without reading the data again.
+    capture_width : int
 
     Notes
     -----
@@ -44,11 +50,13 @@ class CovarianceProduct(FoldState):
 
     _fields = ("basis", "center", "scale", "product")
 
-    def __init__(self, basis: np.ndarray, center: np.ndarray, scale: np.ndarray):
+    def __init__(self, basis: np.ndarray, center: np.ndarray, scale: np.ndarray, capture=None,
+                 capture_width: int = 0):
         self.basis = basis
         self.center = center
         self.scale = scale
         self.product = np.zeros_like(basis)
+        self.capture, self.capture_width = capture, capture_width
 
     def update(self, block: np.ndarray, start: int = 0) -> "CovarianceProduct":
         # Slabs of SLAB rows bound the temporaries (the thin product B Q and the
@@ -58,7 +66,10 @@ class CovarianceProduct(FoldState):
             slab -= self.center
             slab[np.isnan(slab)] = 0.0  # a filled value equals the mean: zero once centered
             slab /= self.scale
-            self.product += slab.T @ (slab @ self.basis)
+            thin = slab @ self.basis
+            self.product += slab.T @ thin
+            if self.capture is not None:
+                self.capture(start + a, thin[:, :self.capture_width], np.einsum("ij,ij->i", slab, slab))
         return self
 
     def merge(self, other: "CovarianceProduct") -> "CovarianceProduct":

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -10,6 +11,7 @@ import numpy as np
 
 from rankfold.errors import DataError
 from rankfold.linalg import sign_flips
+from rankfold.sample_outputs import SampleParts, buffer_bytes, held_bytes
 from rankfold.sources.base import Partition, Source
 from rankfold.sources.readahead import iter_blocks
 
@@ -30,6 +32,9 @@ class RouteInput:
     power_iterations: int = 2
     sketch: str = "subspace"
     seed: int = 0
+    scores: bool = True  # whether per-sample outputs will be written (routes keep what they need)
+    scratch: str | None = None  # folder for a tall intermediate that exceeds memory (created on demand)
+    outputs_held: bool = False  # per-sample outputs returned in memory (no result store): counted too
 
 
 @dataclass
@@ -51,8 +56,9 @@ class PassRecord:
 class Decomposition:
     """A route's output, before it is written to a result store.
 
-    Shapes: ``loadings`` (m, k); ``variance`` (k,); ``center``, ``scale`` (m,);
-    ``scores`` (n, k) or None when the route does not produce them for free.
+    Shapes: ``loadings`` (m, k); ``variance`` (k,); ``center``, ``scale`` (m,).
+    ``parts`` holds what the route produced towards the scores
+    (:class:`rankfold.sample_outputs.SampleParts`; empty when a scores pass is needed).
     """
 
     route: str
@@ -62,7 +68,7 @@ class Decomposition:
     center: np.ndarray
     scale: np.ndarray
     n_samples: int
-    scores: np.ndarray | None = None
+    parts: SampleParts = field(default_factory=SampleParts)
     passes: list[PassRecord] = field(default_factory=list)
     extra: dict = field(default_factory=dict)  # route-specific attributes for the store
 
@@ -70,8 +76,7 @@ class Decomposition:
         """Apply the documented sign rule (:mod:`rankfold.linalg`) in place."""
         flips = sign_flips(self.loadings)
         self.loadings *= flips
-        if self.scores is not None:
-            self.scores *= flips
+        self.parts.flip(flips)
         return self
 
 
@@ -91,6 +96,24 @@ def run_pass(name: str, inp: RouteInput, partition: Partition, state,
                           "seconds": time.perf_counter() - t0})
     record = PassRecord(name, partition.axis, total, partition.largest, read, time.perf_counter() - t0)
     return state, record
+
+
+def output_bytes(inp: RouteInput) -> int:
+    """Memory the per-sample stage holds beside a route's state (0 without scores)."""
+    if not inp.scores:
+        return 0
+    n = inp.source.n_samples
+    return buffer_bytes(n, inp.rank) + (held_bytes(n, inp.rank) if inp.outputs_held else 0)
+
+
+def scratch_folder(inp: RouteInput) -> str:
+    """A fresh folder for a scratch Zarr store: under ``inp.scratch`` or the system's temporary folder."""
+    import tempfile
+
+    if inp.scratch is None:
+        return tempfile.mkdtemp(prefix="rankfold-scratch-")
+    os.makedirs(inp.scratch, exist_ok=True)
+    return tempfile.mkdtemp(prefix="tall-", dir=inp.scratch)
 
 
 def check_numerical_rank(values: np.ndarray, size: int, inp: RouteInput) -> np.ndarray:

@@ -14,7 +14,8 @@ from rankfold.errors import DataError
 from rankfold.folds import ColumnMoments, FeatureGram
 from rankfold.linalg import top_eigh
 from rankfold.memory import block_budget
-from rankfold.routes.common import Decomposition, RouteInput, check_numerical_rank, check_values, run_pass
+from rankfold.routes.common import (Decomposition, RouteInput, check_numerical_rank, check_values,
+                                    output_bytes, run_pass)
 
 NAME = "features"
 
@@ -28,7 +29,7 @@ def run(inp: RouteInput) -> Decomposition:
     source = inp.source
     m = source.n_features
     budget = block_budget(inp.memory_limit, fixed_bytes(source.n_samples, m, inp.rank)
-                          + source.fixed_read_bytes("samples"), source.min_block_bytes("samples"),
+                          + source.fixed_read_bytes("samples") + output_bytes(inp), source.min_block_bytes("samples"),
                           "the feature-Gram route")
     partition = source.partition("samples", budget)
     passes = []

@@ -15,7 +15,9 @@ import scipy.linalg
 
 from rankfold.errors import DataError
 from rankfold.memory import block_budget
-from rankfold.routes.common import Decomposition, PassRecord, RouteInput, check_numerical_rank, check_values
+from rankfold.sample_outputs import SampleParts
+from rankfold.routes.common import (Decomposition, PassRecord, RouteInput, check_numerical_rank, check_values,
+                                    output_bytes)
 
 NAME = "memory"
 
@@ -28,7 +30,7 @@ def fixed_bytes(n_samples: int, n_features: int, rank: int) -> int:
 def run(inp: RouteInput) -> Decomposition:
     source = inp.source
     n, m = source.shape
-    block_budget(inp.memory_limit, fixed_bytes(n, m, inp.rank), 0, "the in-memory route")
+    block_budget(inp.memory_limit, fixed_bytes(n, m, inp.rank) + output_bytes(inp), 0, "the in-memory route")
     if n < 2:
         raise DataError(f"{source.path}: {n} sample(s); a variance needs at least two")
     t0 = time.perf_counter()
@@ -55,10 +57,11 @@ def run(inp: RouteInput) -> Decomposition:
             raise DataError(f"{source.path}: column(s) {names} are constant, so they have no correlation "
                             "to scale; leave them out, or drop --standardize to analyse covariances")
         x /= scale
-    total = float(np.einsum("ij,ij->", x, x)) / (n - 1)
+    sumsq = np.einsum("ij,ij->i", x, x)  # before the SVD overwrites x
+    total = float(sumsq.sum()) / (n - 1)
     u, s, vt = scipy.linalg.svd(x, full_matrices=False, overwrite_a=True, check_finite=False)
     k = inp.rank
     variance = check_numerical_rank(s[:k] ** 2 / (n - 1), max(n, m), inp)
-    scores = u[:, :k] * s[:k]
+    parts = SampleParts(scores=u[:, :k] * s[:k], sumsq=sumsq)
     return Decomposition(NAME, vt[:k].T.copy(), variance, total, center, scale, n,
-                         scores=scores, passes=[record]).with_sign_rule()
+                         parts=parts, passes=[record]).with_sign_rule()

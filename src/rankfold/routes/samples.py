@@ -16,7 +16,9 @@ from rankfold.errors import DataError
 from rankfold.folds import FeatureProjection, SampleGram
 from rankfold.linalg import top_eigh
 from rankfold.memory import block_budget
-from rankfold.routes.common import Decomposition, RouteInput, check_numerical_rank, feature_block_check, run_pass
+from rankfold.sample_outputs import SampleParts
+from rankfold.routes.common import (Decomposition, RouteInput, check_numerical_rank, feature_block_check,
+                                    output_bytes, run_pass)
 
 NAME = "samples"
 
@@ -31,7 +33,7 @@ def run(inp: RouteInput) -> Decomposition:
     n, m = source.shape
     if n < 2:
         raise DataError(f"{source.path}: {n} sample(s); a variance needs at least two")
-    budget = block_budget(inp.memory_limit, fixed_bytes(n, m, inp.rank) + source.fixed_read_bytes("features"),
+    budget = block_budget(inp.memory_limit, fixed_bytes(n, m, inp.rank) + source.fixed_read_bytes("features") + output_bytes(inp),
                           source.min_block_bytes("features"), "the sample-Gram route")
     partition = source.partition("features", budget)
     prepare = feature_block_check(inp)
@@ -47,7 +49,7 @@ def run(inp: RouteInput) -> Decomposition:
     sigma = np.sqrt(values)
     projection = FeatureProjection(vectors / sigma, state.center, state.scale)
     projection, load_pass = run_pass("loadings", inp, partition, projection, lambda b, s: b)
+    parts = SampleParts(scores=vectors * sigma, sumsq=projection.sample_sumsq)
     result = Decomposition(NAME, projection.loadings, values / (n - 1), state.sumsq / (n - 1),
-                           state.center, state.scale, n, scores=vectors * sigma,
-                           passes=[gram_pass, load_pass])
+                           state.center, state.scale, n, parts=parts, passes=[gram_pass, load_pass])
     return result.with_sign_rule()

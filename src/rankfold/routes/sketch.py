@@ -2,7 +2,8 @@
 
 The operator is the covariance: ``C = Xc^T Xc`` in feature space when samples
 are stored as rows (blocks of whole samples, centered and scaled exactly with
-the column moments of a first pass), or ``G = Xc Xc^T`` in sample space when
+the global column moments, learnt during the first power iteration or, when the
+spreads or fill values are needed first, in a pass of their own), or ``G = Xc Xc^T`` in sample space when
 samples are stored as columns (blocks of whole features, each centered on its
 own; the loadings then take one more pass).  Each application of the operator
 to a thin basis of width ``w = rank + oversample`` is one pass
@@ -14,8 +15,9 @@ subspace
     Halko, Martinsson and Tropp (2011), Algorithm 4.4: ``Q = orth(Omega)``,
     then ``power_iterations`` times ``Q = orth(C Q)`` (one pass each, QR
     re-normalization in between), then a Rayleigh-Ritz pass.  Passes:
-    ``1 + power_iterations + 1`` (rows; the first reads the moments) or
-    ``power_iterations + 1 + 1`` (columns; the last recovers loadings).
+    ``power_iterations + 1`` (rows; one more for the moments when
+    :func:`fuses_moments` says no) or ``power_iterations + 1 + 1`` (columns;
+    the last recovers loadings).
 block Krylov
     Musco and Musco (2015): the Rayleigh-Ritz step uses the whole Krylov
     space ``[Q0, C Q0, ..., C^q Q0]`` (width ``w (q + 1)``): more accurate for
@@ -34,14 +36,16 @@ computed from ``TEST_VECTORS`` extra random vectors carried in the last pass.
 from __future__ import annotations
 
 import numpy as np
+import scipy.linalg
 
 from rankfold.errors import DataError
 from rankfold.folds import ColumnMoments, CovarianceProduct, FeatureProjection, GramProduct, StreamingSketch
 from rankfold.memory import block_budget
 from rankfold.randomized import (TEST_VECTORS, nystrom, orthonormalize, random_test_matrix, rayleigh_ritz,
                                  residual_bound)
+from rankfold.sample_outputs import SampleParts, TallProduct, scratch_chunk_bytes, writer_bytes
 from rankfold.routes.common import (Decomposition, RouteInput, check_numerical_rank, check_values, feature_block_check,
-                                    run_pass)
+                                    output_bytes, run_pass, scratch_folder)
 
 NAME = "sketch"
 KINDS = ("subspace", "krylov", "one-pass")
@@ -54,8 +58,23 @@ def basis_width(rank: int, oversample: int, power_iterations: int, kind: str) ->
 
 
 def passes(power_iterations: int, kind: str) -> int:
-    """Reads of the data: moments or loadings, the iterations, the final product."""
+    """Reads of the data at most: moments or loadings, the iterations, the final product.
+
+    The planner subtracts the moments pass where :func:`fuses_moments` applies.
+    """
     return 1 if kind == "one-pass" else power_iterations + 2
+
+
+def fuses_moments(standardize: bool, missing: str, power_iterations: int, kind: str) -> bool:
+    """Whether the rows orientation folds the column moments into the first power iteration.
+
+    :class:`~rankfold.folds.StreamingSketch` folds ``Xc^T Xc Q0`` exactly
+    (Chan et al.'s update) while it learns the means, so the separate moments
+    pass is saved -- unless the spreads are needed before the first product
+    (``standardize``) or missing values must be filled with means not yet
+    known (``fill-mean``), or there is no power iteration to fuse with.
+    """
+    return not standardize and missing != "fill-mean" and power_iterations >= 1 and kind != "one-pass"
 
 
 def fixed_bytes(operator_size: int, n_features: int, rank: int, oversample: int = 10,
@@ -72,29 +91,55 @@ def run(inp: RouteInput) -> Decomposition:
         raise DataError(f"{source.path}: {n} sample(s); a variance needs at least two")
     axis = source.native_axis  # read along the stored rows
     size = m if axis == "samples" else n
-    budget = block_budget(inp.memory_limit,
-                          fixed_bytes(size, m, inp.rank, inp.oversample, inp.power_iterations, inp.sketch)
-                          + source.fixed_read_bytes(axis), source.min_block_bytes(axis), "the randomized route")
+    fixed = (fixed_bytes(size, m, inp.rank, inp.oversample, inp.power_iterations, inp.sketch)
+             + source.fixed_read_bytes(axis) + output_bytes(inp))
+    tall_in_memory = None
+    if captures_scores(inp):
+        width = basis_width(inp.rank, inp.oversample, inp.power_iterations, inp.sketch)
+        tall_in_memory = tall_fits_in_memory(n, width, inp.memory_limit)
+        fixed += (TallProduct.bytes_needed(n, width) if tall_in_memory
+                  else writer_bytes(n, width + 1, scratch_chunk_bytes(inp.memory_limit)))
+    budget = block_budget(inp.memory_limit, fixed, source.min_block_bytes(axis), "the randomized route")
     partition = source.partition(axis, budget)
     width = inp.rank + inp.oversample
     omega, tests = random_test_matrix(inp.seed, size, width)
     if axis == "samples":
-        return _run_rows(inp, partition, omega, tests)
+        return _run_rows(inp, partition, omega, tests, tall_in_memory)
     return _run_columns(inp, partition, omega, tests)
 
 
-def _iterate(inp: RouteInput, omega: np.ndarray, tests: np.ndarray, apply) -> tuple:
-    """Subspace or block Krylov iteration; returns (basis, product of basis, product of tests)."""
+def captures_scores(inp: RouteInput) -> bool:
+    """Whether the last pass keeps ``Xc Q`` for the scores (rows orientation, iterative kinds)."""
+    return inp.scores and inp.source.native_axis == "samples" and inp.sketch != "one-pass"
+
+
+def tall_fits_in_memory(n: int, width: int, memory_limit: int) -> bool:
+    """Keep ``Xc Q`` (n x width) in memory when it takes at most a quarter of the ceiling.
+
+    Otherwise it goes to a scratch Zarr array beside the output and is read
+    back once; the rest of the ceiling stays with the blocks.
+    """
+    return TallProduct.bytes_needed(n, width) <= memory_limit // 4
+
+
+def _iterate(inp: RouteInput, omega: np.ndarray, tests: np.ndarray, apply, first=None) -> tuple:
+    """Subspace or block Krylov iteration; returns (basis, product of basis, product of tests).
+
+    ``apply(q, label, last)`` applies the operator in one pass; ``last`` marks
+    the Rayleigh-Ritz pass, whose thin product the rows orientation keeps.
+    ``first``, when given, is the operator applied to ``orthonormalize(omega)``
+    already (folded together with the moments).
+    """
     q = orthonormalize(omega)
     krylov = [q]
-    for _ in range(inp.power_iterations):
-        z = apply(q, "power iteration")
+    for i in range(inp.power_iterations):
+        z = first if i == 0 and first is not None else apply(q, "power iteration", False)
         q = orthonormalize(z, np.hstack(krylov) if inp.sketch == "krylov" else None)
         if q.shape[1] == 0:
             break  # the Krylov space spans everything reachable: more passes add nothing
         krylov.append(q)
     basis = np.hstack(krylov) if inp.sketch == "krylov" else q
-    both = apply(np.hstack([basis, tests]), "Rayleigh-Ritz")
+    both = apply(np.hstack([basis, tests]), "Rayleigh-Ritz", True)
     return basis, both[:, :basis.shape[1]], both[:, basis.shape[1]:]
 
 
@@ -123,10 +168,11 @@ def _error_attrs(components: np.ndarray, basis: np.ndarray | None, n: int, top_v
     return {"error_bound": attrs, "sketch": {"kind": kind}}
 
 
-def _run_rows(inp: RouteInput, partition, omega, tests) -> Decomposition:
+def _run_rows(inp: RouteInput, partition, omega, tests, tall_in_memory) -> Decomposition:
     source = inp.source
     n, m = source.shape
     passes_done = []
+    parts = SampleParts()
     fill = inp.missing == "fill-mean"
 
     def check(block, start):
@@ -143,6 +189,13 @@ def _run_rows(inp: RouteInput, partition, omega, tests) -> Decomposition:
         residual = y_tests - vectors @ (values[:, None] * (vectors.T @ tests))
         basis_residual, basis = None, omega
         center, scale, total = state.mean, np.ones(m), float(state.m2.sum()) / (n - 1)
+    elif fuses_moments(inp.standardize, inp.missing, inp.power_iterations, inp.sketch):
+        # One pass learns the means and applies the centered covariance to Q0 = orth(Omega).
+        state, record = run_pass("moments and power iteration", inp, partition,
+                                 StreamingSketch(orthonormalize(omega)), check)
+        passes_done.append(record)
+        center, scale, total = state.mean, np.ones(m), float(state.m2.sum()) / (n - 1)
+        first = state.product
     else:
         moments, record = run_pass("column moments", inp, partition, ColumnMoments(m), check)
         passes_done.append(record)
@@ -160,20 +213,30 @@ def _run_rows(inp: RouteInput, partition, omega, tests) -> Decomposition:
                 raise DataError(f"{source.path}: column(s) {names} are constant, so they have no correlation "
                                 "to scale; leave them out, or drop --standardize to analyse covariances")
             total = float(m)
+        first = None
 
-        def apply(basis, label):
-            state, rec = run_pass(label, inp, partition, CovarianceProduct(basis, center, scale), check)
+    if inp.sketch != "one-pass":
+        def apply(basis, label, last):
+            state = CovarianceProduct(basis, center, scale)
+            if last and tall_in_memory is not None:
+                width = basis.shape[1] - tests.shape[1]
+                parts.tall = TallProduct(n, width, None if tall_in_memory else scratch_folder(inp),
+                                         scratch_chunk_bytes(inp.memory_limit))
+                state = CovarianceProduct(basis, center, scale, parts.tall.capture, width)
+            state, rec = run_pass(label, inp, partition, state, check)
             passes_done.append(rec)
             return state.product
 
-        basis, product, product_tests = _iterate(inp, omega, tests, apply)
-        values, vectors = rayleigh_ritz(basis, product, inp.rank)
+        basis, product, product_tests = _iterate(inp, omega, tests, apply, first)
+        values, vectors, parts.coefficients = rayleigh_ritz(basis, product, inp.rank, coefficients=True)
+        if parts.tall is None:
+            parts.coefficients = None
         residual = product_tests - vectors @ (vectors.T @ product_tests)
         basis_residual = product_tests - basis @ (basis.T @ product_tests)
     values = check_numerical_rank(values, max(n, m), inp)
     extra = _error_attrs(residual, basis_residual, n, values[0], inp.sketch, basis.shape[1])
     return Decomposition(NAME, vectors, values / (n - 1), total, center, scale, n, passes=passes_done,
-                         extra=extra).with_sign_rule()
+                         parts=parts, extra=extra).with_sign_rule()
 
 
 def _run_columns(inp: RouteInput, partition, omega, tests) -> Decomposition:
@@ -183,7 +246,7 @@ def _run_columns(inp: RouteInput, partition, omega, tests) -> Decomposition:
     seen = {}
     check = feature_block_check(inp)
 
-    def apply(basis, label):
+    def apply(basis, label, last=False):
         state = GramProduct(basis, m, inp.standardize)
         state.feature_names, state.source_path = source.feature_names, source.path
         state, rec = run_pass(label, inp, partition, state, check)
@@ -205,13 +268,20 @@ def _run_columns(inp: RouteInput, partition, omega, tests) -> Decomposition:
         basis_residual = product_tests - basis @ (basis.T @ product_tests)
     values = check_numerical_rank(values, max(n, m), inp)
     sigma = np.sqrt(values)
-    projection = FeatureProjection(vectors / sigma, seen["center"], seen["scale"])
+    projection = FeatureProjection(vectors / sigma, seen["center"], seen["scale"], scores=inp.scores)
     projection, record = run_pass("loadings", inp, partition, projection, lambda b, s: b)
     passes_done.append(record)
     # Loadings from Ritz vectors are orthonormal only as far as the Ritz vectors are
-    # eigenvectors; re-orthonormalize so the stored axes are exactly orthonormal.
-    loadings, _ = np.linalg.qr(projection.loadings)
-    loadings *= np.sign(np.einsum("ij,ij->j", loadings, projection.loadings))
+    # eigenvectors; re-orthonormalize so the stored axes are exactly orthonormal:
+    # L = L_raw R^-1 D (D the signs).  The scores must be Xc L for these very axes,
+    # so they are Xc L_raw R^-1 D, with Xc L_raw folded in the same pass.
+    loadings, r = np.linalg.qr(projection.loadings)
+    signs = np.sign(np.einsum("ij,ij->j", loadings, projection.loadings))
+    loadings *= signs
+    parts = SampleParts()
+    if inp.scores:
+        scores = scipy.linalg.solve_triangular(r, projection.sample_product.T, trans="T", lower=False).T
+        parts = SampleParts(scores=scores * signs, sumsq=projection.sample_sumsq)
     extra = _error_attrs(residual, basis_residual, n, values[0], inp.sketch, basis.shape[1])
     return Decomposition(NAME, loadings, values / (n - 1), seen["total"], seen["center"], seen["scale"], n,
-                         scores=vectors * sigma, passes=passes_done, extra=extra).with_sign_rule()
+                         parts=parts, passes=passes_done, extra=extra).with_sign_rule()

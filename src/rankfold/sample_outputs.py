@@ -1,0 +1,237 @@
+"""Per-sample outputs: scores, reconstruction residuals and the outlier flag.
+
+Every route ends with the same step: each sample's scores ``z = L^T xc``
+(``xc`` the centered, scaled sample; ``L`` the ``m x k`` loadings), its
+squared residual ``||xc - L z||^2`` and that residual as a fraction of
+``||xc||^2``.  Routes deliver the ingredients in one of three forms
+(:class:`SampleParts`): scores already in memory (in-memory LAPACK, the
+sample-Gram route, the randomized route on samples stored as columns); a tall
+product ``Y = Xc Q`` captured during the randomized route's last pass, from
+which ``z = Y S`` for the small Ritz coefficients ``S``; or nothing, in which
+case one more pass over the data computes them (the feature-Gram route).
+
+The residual is computed as ``||xc||^2 - ||z||^2`` (``L`` has orthonormal
+columns), which needs no block-sized temporary.  Its absolute rounding error
+is a few ``eps * ||xc||^2``, so ``residual_fraction`` is exact to about
+``1e-13`` in absolute terms: below that a sample is explained completely for
+every practical purpose.
+
+Writes go through :class:`RowWriter`, which buffers rows until a whole chunk
+of the output arrays is complete, so every Zarr write covers whole chunks.
+
+Flag rule: the robust z-score of common practice (median and median absolute
+deviation, MAD scaled by 1.4826 to estimate a standard deviation under
+normality; Iglewicz and Hoaglin 1993 for the 3.5 default), applied to the
+cube root of the squared residual.  A squared residual left by noise is close
+to a scaled chi-square variable, which is strongly skewed: on the raw scale
+the rule would flag 2-10% of perfectly ordinary samples.  Its cube root is
+close to normal (Wilson and Hilferty 1931), so a threshold of 3.5 flags about
+0.02% of samples when nothing is unusual, whatever the degrees of freedom
+(checked by simulation in tests/test_scores.py).  A sample is flagged when
+``cbrt(residual) > median + threshold * 1.4826 * MAD`` (both of the cube
+roots); the cutoff is stored in residual units.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+# Rows per chunk of per-sample arrays: about 16 MB of scores per chunk, and
+# never more than 65,536 rows (a fine grain for readers that take a few rows).
+CHUNK_BYTES = 1 << 24
+MAX_CHUNK_ROWS = 65536
+MAD_TO_SIGMA = 1.4826  # 1 / Phi^-1(3/4): the MAD of a normal sample estimates 0.6745 sigma
+DEFAULT_FLAG_THRESHOLD = 3.5
+SCORE_DTYPES = ("float32", "float64")
+
+
+def chunk_rows(n_samples: int, width: int, itemsize: int = 8, chunk_bytes: int = CHUNK_BYTES) -> int:
+    """Rows per chunk for a ``(n_samples, width)`` per-sample array of about ``chunk_bytes``."""
+    rows = max(64, min(MAX_CHUNK_ROWS, chunk_bytes // max(1, width * itemsize)))
+    return max(1, min(n_samples, rows))
+
+
+def writer_bytes(n_samples: int, width: int, chunk_bytes: int = CHUNK_BYTES) -> int:
+    """Memory a :class:`RowWriter` of ``width`` float64 columns holds: at most two chunks' rows."""
+    return 2 * chunk_rows(n_samples, width, chunk_bytes=chunk_bytes) * width * 8
+
+
+def buffer_bytes(n_samples: int, rank: int) -> int:
+    """Memory of the per-sample stage: the writer of scores and residuals, and every residual for the flag."""
+    return 2 * chunk_rows(n_samples, rank) * (rank + 2) * 8 + 2 * n_samples * 8
+
+
+def held_bytes(n_samples: int, rank: int) -> int:
+    """Per-sample outputs kept in memory (a result without a store): float64 scores, residuals, flags."""
+    return n_samples * (rank + 2) * 8 + n_samples
+
+
+def scratch_chunk_bytes(memory_limit: int) -> int:
+    """Chunk size of a scratch array: a small share of the ceiling, so its writer fits beside the blocks."""
+    return max(1 << 16, min(CHUNK_BYTES, memory_limit // 16))
+
+
+class RowWriter:
+    """Write rows in order into arrays chunked along axis 0, one whole chunk at a time.
+
+    Parameters
+    ----------
+    arrays : dict of str to array
+        Zarr or numpy arrays of equal length, the first axis chunked by ``chunk`` rows.
+    chunk : int
+        Rows per chunk (ignored for numpy arrays, which take rows directly).
+    start : int
+        First row this writer is responsible for; must be a chunk boundary, so
+        that writers of disjoint ranges never share a chunk.
+    """
+
+    def __init__(self, arrays: dict, chunk: int, start: int = 0):
+        self.arrays = arrays
+        self.chunk = chunk
+        self.position = start  # next row expected
+        self.flushed = start  # rows before this are on disk
+        self.pending: dict[str, list[np.ndarray]] = {name: [] for name in arrays}
+        self.direct = all(isinstance(a, np.ndarray) for a in arrays.values())
+
+    def write(self, start: int, **rows: np.ndarray) -> None:
+        if start != self.position:
+            raise ValueError(f"rows must arrive in order: expected row {self.position}, got {start}")
+        count = len(next(iter(rows.values())))
+        if self.direct:
+            for name, value in rows.items():
+                self.arrays[name][start:start + count] = value
+            self.position = self.flushed = start + count
+            return
+        for name, value in rows.items():
+            self.pending[name].append(np.asarray(value))
+        self.position += count
+        whole = self.flushed + (self.position - self.flushed) // self.chunk * self.chunk
+        if whole > self.flushed:
+            self._write_through(whole)
+
+    def close(self) -> None:
+        """Write the rows still buffered (the array's last, possibly short, chunk)."""
+        if self.position > self.flushed:
+            self._write_through(self.position)
+
+    def _write_through(self, stop: int) -> None:
+        keep = self.position - stop
+        for name, parts in self.pending.items():
+            joined = np.concatenate(parts) if len(parts) > 1 else parts[0]
+            self.arrays[name][self.flushed:stop] = joined[:len(joined) - keep]
+            self.pending[name] = [joined[len(joined) - keep:].copy()] if keep else []
+        self.flushed = stop
+
+
+def residuals(scores: np.ndarray, sumsq: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Squared reconstruction residuals and their fraction of each sample's squared norm.
+
+    ``scores`` (rows, k) in float64, ``sumsq`` (rows,) the centered squared norms.
+    A sample with zero norm sits at the center: residual and fraction 0.
+    """
+    explained = np.einsum("ij,ij->i", scores, scores)
+    residual = np.maximum(sumsq - explained, 0.0)  # round-off can leave a tiny negative
+    fraction = np.divide(residual, sumsq, out=np.zeros_like(residual), where=sumsq > 0)
+    return residual, fraction
+
+
+@dataclass(frozen=True)
+class FlagRule:
+    """The robust outlier rule and the statistics it was applied with."""
+
+    median: float
+    mad: float
+    threshold: float
+    cutoff: float
+    flagged: int
+
+    def as_dict(self) -> dict:
+        return {"median": self.median, "mad": self.mad, "threshold": self.threshold, "cutoff": self.cutoff,
+                "flagged": self.flagged, "scale": "cube root of the squared residual",
+                "rule": f"cbrt(residual) > median + {self.threshold:g} * {MAD_TO_SIGMA} * MAD, median and "
+                        "MAD of cbrt(residual) (robust z-score, common practice; cube root after Wilson and "
+                        "Hilferty 1931)"}
+
+
+def flag_rule(residual: np.ndarray, threshold: float) -> FlagRule:
+    """Median and MAD of the residuals' cube roots, and the residual above which samples are flagged.
+
+    When the MAD is zero (at least half the residuals are equal, for example
+    all zero when every component is kept) nothing can be called unusual by
+    this rule, and the cutoff is infinite.
+    """
+    roots = np.cbrt(residual)
+    median = float(np.median(roots))
+    mad = float(np.median(np.abs(roots - median)))
+    cutoff = (median + threshold * MAD_TO_SIGMA * mad) ** 3 if mad > 0 else float("inf")
+    return FlagRule(median, mad, float(threshold), cutoff, int(np.count_nonzero(residual > cutoff)))
+
+
+@dataclass
+class SampleParts:
+    """What a route hands over for the per-sample outputs (see the module docstring).
+
+    Exactly one of ``scores`` (n, k) or ``tall`` (a :class:`TallProduct`, with
+    ``coefficients`` (w, k)) is set, or neither when a scores pass is needed.
+    ``sumsq`` (n,) goes with ``scores``.
+    """
+
+    scores: np.ndarray | None = None
+    sumsq: np.ndarray | None = None
+    tall: "TallProduct | None" = None
+    coefficients: np.ndarray | None = None
+
+    def flip(self, flips: np.ndarray) -> None:
+        """Apply the sign rule's flips to whatever holds the scores."""
+        if self.scores is not None:
+            self.scores *= flips
+        if self.coefficients is not None:
+            self.coefficients *= flips
+
+
+class TallProduct:
+    """``Y = Xc Q`` (n, w) and each sample's squared norm, in memory or in a scratch Zarr group.
+
+    Filled in row order by the randomized route's last pass; read back chunk by
+    chunk to form scores once the Ritz coefficients are known.
+    """
+
+    def __init__(self, n: int, width: int, scratch: str | None, chunk_bytes: int = CHUNK_BYTES):
+        self.n, self.width, self.scratch = n, width, scratch
+        self.chunk = chunk_rows(n, width + 1, chunk_bytes=chunk_bytes)
+        if scratch is None:
+            self.y = np.empty((n, width))
+            self.sumsq = np.empty(n)
+        else:
+            import zarr
+
+            group = zarr.open_group(scratch, mode="w", zarr_format=3)
+            # Uncompressed: written once and read once, right away; compression
+            # would cost more time than the bytes it saves.
+            self.y = group.create_array("y", shape=(n, width), dtype="float64", chunks=(self.chunk, width),
+                                        compressors=None)
+            self.sumsq = group.create_array("sumsq", shape=(n,), dtype="float64", chunks=(self.chunk,),
+                                            compressors=None)
+        self.writer = RowWriter({"y": self.y, "sumsq": self.sumsq}, self.chunk)
+
+    @staticmethod
+    def bytes_needed(n: int, width: int) -> int:
+        return n * (width + 1) * 8
+
+    def capture(self, start: int, y: np.ndarray, sumsq: np.ndarray) -> None:
+        self.writer.write(start, y=y, sumsq=sumsq)
+
+    def chunks(self):
+        """Yield ``(start, y, sumsq)`` for consecutive row ranges."""
+        self.writer.close()
+        for a in range(0, self.n, self.chunk):
+            b = min(self.n, a + self.chunk)
+            yield a, np.asarray(self.y[a:b]), np.asarray(self.sumsq[a:b])
+
+    def remove(self) -> None:
+        if self.scratch is not None:
+            import shutil
+
+            shutil.rmtree(self.scratch, ignore_errors=True)
