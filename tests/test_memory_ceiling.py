@@ -64,8 +64,11 @@ DRIVER = textwrap.dedent(r"""
             return False
         return vm("VmHWM") <= vm("VmRSS") + 2**20
 
+    # Results go to a store, as from the command line: the scores stream to disk whole chunks
+    # at a time (a result returned in memory would hold them, counted against the ceiling).
+    outs = os.path.dirname(os.path.abspath(big))
     # Warm-up: same format, same width, same route, same ceiling.
-    warm = rankfold.decompose(small, 3, memory_limit=ceiling, route=route)
+    warm = rankfold.decompose(small, 3, memory_limit=ceiling, route=route, out=os.path.join(outs, "warm.zarr"))
     del warm
     gc.collect()
     time.sleep(0.2)
@@ -85,7 +88,8 @@ DRIVER = textwrap.dedent(r"""
         sampler = threading.Thread(target=sample, daemon=True)
         sampler.start()
         t0 = time.perf_counter()
-        result = rankfold.decompose(big, 3, memory_limit=ceiling, route=route)
+        result = rankfold.decompose(big, 3, memory_limit=ceiling, route=route,
+                                    out=os.path.join(outs, f"run{run}.zarr"))
         seconds = time.perf_counter() - t0
         stop.set()
         sampler.join()
@@ -170,7 +174,7 @@ WRITERS = {
     # Row groups of 40,000 rows (20 MB as float32): larger than one block at this ceiling, so
     # they are streamed in record batches; plain encoding.
     "parquet-groups-over-one-block": lambda path, rows: write_parquet_table(
-        path.with_suffix(".parquet"), rows, 40_000, use_dictionary=False),
+        path.with_suffix(".parquet"), rows, 30_000, use_dictionary=False),
     "npy": lambda path, rows: write_npy_table(path.with_suffix(".npy"), rows),
 }
 

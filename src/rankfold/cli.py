@@ -82,6 +82,17 @@ def _parser() -> argparse.ArgumentParser:
     c.add_argument("--seed", type=int, help="seed of the subset and of the settings (default 0)")
     _source_options(c)
 
+    r = sub.add_parser("report", help="write a self-contained HTML report of a result (figures, numbers as JSON)")
+    r.add_argument("result", metavar="RESULT.zarr")
+    r.add_argument("--out", "-o", metavar="DIR",
+                   help="report folder to write (default: the result's path with .zarr replaced by .report)")
+    r.add_argument("--label-column", metavar="NAME",
+                   help="Parquet column of the source colouring the scores scatter (at most 12 distinct values)")
+    r.add_argument("--max-points", type=int, default=20000, metavar="N",
+                   help="most samples drawn in the scatter, chosen at random (default 20000)")
+    r.add_argument("--seed", type=int, default=0, help="seed of the scatter's random sample (default 0)")
+    r.add_argument("--overwrite", action="store_true", help="replace an existing report folder")
+
     m = sub.add_parser("demo", help="generate two invented data sets and decompose them")
     m.add_argument("--out", default="rankfold-demo", metavar="DIR", help="folder for data and results (default: ./rankfold-demo)")
     m.add_argument("--scale", type=float, default=1.0,
@@ -195,6 +206,16 @@ def _show(args) -> int:
     return 0
 
 
+def _report(args) -> int:
+    from rankfold.reporting import default_report_folder, write_result_report
+    from rankfold.result import open_result
+
+    out = args.out or default_report_folder(args.result)
+    print(write_result_report(open_result(args.result), out, label_column=args.label_column,
+                              max_points=args.max_points, seed=args.seed, overwrite=args.overwrite))
+    return 0
+
+
 def _demo(args) -> int:
     from rankfold.demo import run_demo
     from rankfold.memory import parse_memory
@@ -224,8 +245,8 @@ def _compare(args) -> int:
     return 0
 
 
-COMMANDS = {"decompose": _decompose, "plan": _plan, "project": _project, "show": _show, "demo": _demo,
-            "compare": _compare}
+COMMANDS = {"decompose": _decompose, "plan": _plan, "project": _project, "show": _show, "report": _report,
+            "demo": _demo, "compare": _compare}
 
 
 def main(argv: list[str] | None = None) -> int:

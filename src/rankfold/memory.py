@@ -105,3 +105,20 @@ def return_freed_memory_promptly() -> None:
     except (OSError, AttributeError):
         pass
     _MMAP_THRESHOLD_SET = True
+
+
+def trim_heap() -> None:
+    """Hand freed heap pages back to the system (glibc ``malloc_trim``); a no-op elsewhere.
+
+    Blocks are mapped directly (see :func:`return_freed_memory_promptly`), but
+    the many sub-megabyte temporaries of a pass (slabs, thin products, the
+    per-sample rows waiting for a whole chunk) come from the heap, and freed
+    heap pages stay resident until trimmed.  Measured on the Parquet case of
+    tests/test_memory_ceiling.py: about 6 MB kept from one run to the next.
+    """
+    if not sys.platform.startswith("linux"):
+        return
+    try:
+        ctypes.CDLL("libc.so.6").malloc_trim(0)
+    except (OSError, AttributeError):
+        pass

@@ -38,10 +38,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
-# Rows per chunk of per-sample arrays: about 16 MB of scores per chunk, and
-# never more than 65,536 rows (a fine grain for readers that take a few rows).
-CHUNK_BYTES = 1 << 24
-MAX_CHUNK_ROWS = 65536
+# Rows per chunk of per-sample arrays: about 8 MB of scores per chunk, and
+# never more than 32,768 rows (a fine grain for readers that take a few rows,
+# and a small buffer beside the blocks).
+CHUNK_BYTES = 1 << 23
+MAX_CHUNK_ROWS = 32768
 MAD_TO_SIGMA = 1.4826  # 1 / Phi^-1(3/4): the MAD of a normal sample estimates 0.6745 sigma
 DEFAULT_FLAG_THRESHOLD = 3.5
 SCORE_DTYPES = ("float32", "float64")
@@ -59,8 +60,13 @@ def writer_bytes(n_samples: int, width: int, chunk_bytes: int = CHUNK_BYTES) -> 
 
 
 def buffer_bytes(n_samples: int, rank: int) -> int:
-    """Memory of the per-sample stage: the writer of scores and residuals, and every residual for the flag."""
-    return 2 * chunk_rows(n_samples, rank) * (rank + 2) * 8 + 2 * n_samples * 8
+    """Memory of the per-sample stage while blocks are in flight.
+
+    The writer's buffered rows (at most two chunks of scores and residuals)
+    and every residual, kept for the flag.  The flag's own temporaries (a few
+    vectors of ``n``) come after the last pass, once the blocks are freed.
+    """
+    return 2 * chunk_rows(n_samples, rank) * (rank + 2) * 8 + n_samples * 8
 
 
 def held_bytes(n_samples: int, rank: int) -> int:

@@ -69,8 +69,8 @@ def compare_subset(source, rank: int, *, subset=0.05, feature_subset=None, setti
     memory_limit : int or str, optional
         Ceiling for the subset and the runs on it (default 60% of available memory).
     out : str, optional
-        Report folder to create (refused if it exists): ``comparison.json``,
-        and the HTML report when the report module is installed.
+        Report folder to create (refused if it exists): ``index.html``,
+        ``figures/*.png`` and ``comparison.json`` (:mod:`rankfold.reporting`).
     standardize, missing, samples_as, columns, exclude, missing_code, array
         As in :func:`rankfold.decompose`.
 
@@ -503,6 +503,6 @@ def compare_paths(paths, *, rank=None, out=None, target_angle: float = DEFAULT_T
 
 
 def report_page(folder: str) -> str | None:
-    """The HTML page of a report folder, or None when only the JSON was written."""
+    """The HTML page of a report folder, or None when there is none."""
     pages = sorted(f for f in os.listdir(folder) if f.endswith(".html")) if os.path.isdir(folder) else []
     return os.path.join(folder, pages[0]) if pages else None

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import json
 import math
 import os
 import shutil
@@ -10,9 +9,6 @@ import shutil
 import numpy as np
 
 from rankfold.errors import OutputError
-
-COMPARISON_FILE = "comparison.json"
-
 
 def check_report_folder(out: str) -> str:
     """Refuse an existing ``out`` or one whose parent is missing or not writable; return it absolute."""
@@ -82,17 +78,11 @@ def plain(value):
     return value
 
 
-def write_report(comparison: dict, folder: str, **results) -> str | None:
-    """Write the report of ``comparison`` into the empty ``folder``.
+def write_report(comparison: dict, folder: str, **results) -> str:
+    """Write the report of ``comparison`` (page, figures, ``comparison.json``) into the empty ``folder``.
 
-    With the report module (:mod:`rankfold.reporting`) present, it writes the
-    page, figures and ``comparison.json``; without it, ``comparison.json`` only.
-    Returns the page's path, or None when only the JSON was written.
+    Returns the page's path.
     """
-    try:
-        from rankfold.reporting import write_comparison_report
-    except ImportError:  # the HTML report lives in its own module; the numbers are written regardless
-        with open(os.path.join(folder, COMPARISON_FILE), "w") as fh:
-            json.dump(comparison, fh, indent=1, allow_nan=False)
-        return None
+    from rankfold.reporting import write_comparison_report
+
     return write_comparison_report(comparison, folder, **results)

@@ -20,10 +20,12 @@ from pathlib import Path
 import rankfold
 from rankfold.demo.fleet import FleetTruth, read_fleet_truth, stored_fleet_parameters, write_fleet
 from rankfold.demo.fleet import fleet_parameters
+from rankfold.demo.labels import fleet_labels, panel_labels
 from rankfold.demo.panel import PanelTruth, panel_parameters, read_panel_truth, stored_panel_parameters
 from rankfold.demo.panel import write_panel
 from rankfold.demo.summary import summarize_fleet, summarize_panel
 from rankfold.errors import OutputError, UsageError
+from rankfold.reporting import write_result_report
 
 __all__ = [
     "run_demo",
@@ -76,6 +78,11 @@ def _fleet(path: Path, records: int, overwrite: bool) -> tuple[FleetTruth, str]:
                     read_fleet_truth, overwrite)
 
 
+def _report(result, folder: Path, labels) -> str:
+    """Write the scenario's report beside its result (replacing the previous run's); path of index.html."""
+    return write_result_report(result, folder, labels=labels, overwrite=True)
+
+
 def _indent(lines: list[str]) -> list[str]:
     return [f"  {line}" if line else "" for line in lines]
 
@@ -92,8 +99,9 @@ def run_demo(
     Parameters
     ----------
     out_dir : str or os.PathLike
-        Folder for ``panel.zarr``, ``fleet/`` and the two results
-        ``panel-result.zarr`` and ``fleet-result.zarr``.
+        Folder for ``panel.zarr``, ``fleet/``, the two results
+        ``panel-result.zarr`` and ``fleet-result.zarr`` and their reports
+        ``panel-result.report/`` and ``fleet-result.report/`` (each with an ``index.html``).
     scale : float
         Multiplies the number of panel markers (20,000) and of records per
         machine (6,000); 50 gives about 1.5 GB of dosages and 12 million records.
@@ -134,11 +142,14 @@ def run_demo(
         memory_limit=memory_limit,
     )
     solved = time.perf_counter() - clock
+    report = _report(result, out / "panel-result.report",
+                     panel_labels(result, panel) if result.scores is not None else None)
     lines += [
         "Scenario 1: breeding panel -- do the components tell the founder populations apart?",
         f"  data    {out / 'panel.zarr'}  ({verb} in {made:.1f} s; "
         f"{panel.n_markers:,} markers x {panel.line_ids.size:,} lines, int8, -1 = missing)",
         f"  result  {out / 'panel-result.zarr'}  (computed in {solved:.1f} s)",
+        f"  report  {report}",
         "",
         *_indent(summarize_panel(result, panel)),
         "",
@@ -154,12 +165,15 @@ def run_demo(
         memory_limit=memory_limit,
     )
     solved = time.perf_counter() - clock
+    report = _report(result, out / "fleet-result.report",
+                     fleet_labels(result, fleet) if result.scores is not None else None)
     lines += [
         "Scenario 2: machine fleet -- do the components find the shared operating modes?",
         f"  data    {out / 'fleet'}  ({verb} in {made:.1f} s; {len(fleet.files)} Parquet files, "
         f"{len(fleet.machine_ids) * fleet.records_per_machine:,} records x "
         f"{len(fleet.channel_names)} channels)",
         f"  result  {out / 'fleet-result.zarr'}  (computed in {solved:.1f} s)",
+        f"  report  {report}",
         "",
         *_indent(summarize_fleet(result, fleet)),
         "",

@@ -11,6 +11,7 @@ import numpy as np
 
 from rankfold.errors import DataError
 from rankfold.linalg import sign_flips
+from rankfold.memory import trim_heap
 from rankfold.sample_outputs import SampleParts, buffer_bytes, held_bytes
 from rankfold.sources.base import Partition, Source
 from rankfold.sources.readahead import iter_blocks
@@ -95,6 +96,7 @@ def run_pass(name: str, inp: RouteInput, partition: Partition, state,
             inp.progress({"pass": name, "block": index + 1, "blocks": total, "bytes": read,
                           "seconds": time.perf_counter() - t0})
     record = PassRecord(name, partition.axis, total, partition.largest, read, time.perf_counter() - t0)
+    trim_heap()
     return state, record
 
 
