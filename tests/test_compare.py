@@ -399,6 +399,9 @@ def test_cli_compare_success_and_failures(tmp_path, digits):
     assert "subspace p=10 q=0" in proc.stdout and str(out) in proc.stdout
     saved = _saved(out)
     assert saved["recommended"] == "krylov p=10 q=2" and saved["target_angle_degrees"] == 2.0
+    # The report page and its figures come with the numbers, and the printed path is the page.
+    assert f"report: {out / 'index.html'}" in proc.stdout
+    assert (out / "figures" / "angles.png").read_bytes().startswith(b"\x89PNG")
 
     proc = _cli("compare", path, "--rank", 3, "--subset", "0.1%", "--out", tmp_path / "small")
     assert proc.returncode == 2
