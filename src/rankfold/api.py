@@ -181,6 +181,11 @@ def _run(inp: RouteInput, chosen: Plan, params: dict, writer: ResultWriter | Non
     t0 = time.perf_counter()
     dec = ROUTES[chosen.route].run(inp)
     per_sample, flag, sample_ids = {}, None, None
+    # No score exceeds sqrt((n - 1) * variance) of its component; past float32's range
+    # (about 3.4e38) float32 would store inf, so such scores are kept in float64.
+    if scores_dtype == "float32" and np.sqrt(2.0 * (dec.n_samples - 1) * float(dec.variance.max(initial=0.0))) \
+            >= np.finfo(np.float32).max:
+        scores_dtype = params["scores_dtype"] = "float64"
     if inp.scores:
         per_sample, flag = _sample_outputs(dec, inp, writer, scores_dtype, flag_threshold)
         # Ids go with scores; reading an id column of a billion rows for nothing would
@@ -188,6 +193,7 @@ def _run(inp: RouteInput, chosen: Plan, params: dict, writer: ResultWriter | Non
         sample_ids = src.read_sample_ids()
     elif dec.parts.tall is not None:
         dec.parts.tall.remove()
+    src.check_unchanged(after_last=True)  # a table rewritten during the last pass is refused too
     seconds = time.perf_counter() - t0
     attrs = _attributes(src, dec, params, chosen.reasons, seconds)
     attrs["plan"] = {"estimated_seconds": round(chosen.estimate.seconds, 3),

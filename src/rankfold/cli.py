@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import shlex
 import sys
 import time
 
@@ -139,37 +140,25 @@ def _common(args) -> dict:
                 oversample=args.oversample, power_iterations=args.power_iterations, sketch=args.sketch)
 
 
-class _StderrProgress:
-    """One line per finished pass on stderr (live display comes with the long-runs work)."""
-
-    def __init__(self):
-        self.last = None
-
-    def __call__(self, event: dict) -> None:
-        if event["block"] == event["blocks"]:
-            mb = event["bytes"] / 1e6
-            rate = mb / max(event["seconds"], 1e-9)
-            print(f"  {event['pass']}: {event['blocks']:,} blocks, {mb:,.1f} MB in "
-                  f"{event['seconds']:.1f} s ({rate:,.0f} MB/s)", file=sys.stderr)
-
-
 def _decompose(args) -> int:
     from rankfold.api import decompose
+    from rankfold.progress import command_monitor
     from rankfold.report import describe_result
 
-    progress = None if args.quiet else _StderrProgress()
     if not args.quiet:
         print(f"rankfold: decomposing {args.source} into {args.rank} component(s)", file=sys.stderr)
-
-    def show_plan(plan) -> None:
-        if not args.quiet:
-            print("\n".join(plan.lines()), file=sys.stderr)
-
-    result = decompose(args.source, args.rank, id_column=args.id_column, seed=args.seed, out=args.out,
-                       overwrite=args.overwrite, progress=progress, on_plan=show_plan, scores=args.scores,
-                       scores_dtype=args.scores_dtype, flag_threshold=args.flag_threshold, **_common(args))
+    # Bars on a terminal, status lines otherwise, the run log beside the result (rankfold.progress).
+    monitor = command_monitor(args.out, sys.stderr, quiet=args.quiet,
+                              command=shlex.join(["rankfold", *args.argv]))
+    with monitor:
+        result = decompose(args.source, args.rank, id_column=args.id_column, seed=args.seed, out=args.out,
+                           overwrite=args.overwrite, progress=monitor, on_plan=monitor.on_plan,
+                           scores=args.scores, scores_dtype=args.scores_dtype, flag_threshold=args.flag_threshold,
+                           **_common(args))
+        lines = describe_result(result)
+        monitor.finished(lines)
     if not args.quiet:
-        print("\n".join(describe_result(result)))
+        print("\n".join(lines))
     return 0
 
 
@@ -256,6 +245,7 @@ def main(argv: list[str] | None = None) -> int:
         args = parser.parse_args(argv)
     except SystemExit as exc:  # argparse has printed its usage message
         return int(exc.code or 0)
+    args.argv = [str(a) for a in (sys.argv[1:] if argv is None else argv)]
     try:
         return COMMANDS[args.command](args)
     except RankfoldError as exc:

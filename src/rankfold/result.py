@@ -128,7 +128,10 @@ def open_result(path: str) -> Result:
     version = attrs.get(FORMAT_KEY)
     if version is None:
         raise OutputError(f"{path}: not a rankfold result (no {FORMAT_KEY!r} attribute)")
-    if int(version) > FORMAT_VERSION:
+    if not isinstance(version, int) or isinstance(version, bool):
+        raise OutputError(f"{path}: {FORMAT_KEY!r} is {version!r}, not a format number; the store was "
+                          "not written by rankfold or was edited")
+    if version > FORMAT_VERSION:
         raise OutputError(f"{path}: written in result format {version}, newer than the {FORMAT_VERSION} "
                           "this rankfold reads; upgrade rankfold")
 

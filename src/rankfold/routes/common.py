@@ -85,6 +85,7 @@ def run_pass(name: str, inp: RouteInput, partition: Partition, state,
              prepare: Callable[[np.ndarray, int], np.ndarray]) -> tuple[object, PassRecord]:
     """Fold every block of ``partition`` into ``state`` after ``prepare``; time it."""
     source = inp.source
+    source.check_unchanged(name)  # a table rewritten between passes would mix two tables
     t0 = time.perf_counter()
     total = len(partition)
     read = 0
@@ -127,6 +128,11 @@ def check_numerical_rank(values: np.ndarray, size: int, inp: RouteInput) -> np.n
     constant columns) gets a clear message instead of arbitrary directions and
     variance fractions of 0/0.
     """
+    if not np.all(np.isfinite(values)):
+        # Each block passed check_values, so only sums across many blocks of huge values get here.
+        raise DataError(f"{inp.source.path}: the sums of squares overflowed double precision; the table's "
+                        "values are too large in magnitude: rescale the columns (for example divide them "
+                        "by a power of ten) and rerun")
     values = np.maximum(values, 0.0)  # round-off can leave tiny negatives in a PSD matrix
     tol = size * np.finfo(float).eps * values[0]
     if values[-1] <= tol:
@@ -140,15 +146,18 @@ def check_numerical_rank(values: np.ndarray, size: int, inp: RouteInput) -> np.n
 
 def check_values(block: np.ndarray, start: int, axis: str, inp: RouteInput,
                  allow_missing: bool) -> None:
-    """Refuse infinities always, and missing values unless a fill policy is set.
+    """Refuse infinities and values whose squares overflow always, missing values unless filled.
 
     Messages give the count in the block and the first position by sample
     number and feature name, so the user can find the bad value.
     """
-    # The sum is finite exactly when every value is (barring overflow, which only
-    # sends us to the precise checks below); it needs no block-sized boolean mask.
-    if np.isfinite(np.sum(block)):
-        return
+    # The sum of squares (one BLAS dot, no block-sized temporary) is finite exactly
+    # when every value is finite and no square overflows; anything else goes to the
+    # precise checks below.
+    flat = np.ravel(block)
+    with np.errstate(over="ignore", invalid="ignore"):
+        if np.isfinite(np.dot(flat, flat)):
+            return
     source = inp.source
     inf = np.isinf(block)
 
@@ -163,14 +172,26 @@ def check_values(block: np.ndarray, start: int, axis: str, inp: RouteInput,
             f"{source.path}: {int(inf.sum()):,} infinite value(s) in {span}; first at {where(inf)}. "
             "Infinities have no mean or variance: replace or remove them before decomposing.")
     del inf
-    if allow_missing:
-        return
-    nan = np.isnan(block)
-    if nan.any():
+    if not allow_missing:
+        nan = np.isnan(block)
+        if nan.any():
+            raise DataError(
+                f"{source.path}: {int(nan.sum()):,} missing value(s) in {span} (the first block holding any; "
+                f"later blocks were not counted); first at {where(nan)}. Fill them with the column mean "
+                "with --missing fill-mean (missing='fill-mean'), or clean the data.")
+        del nan
+    # Finite values whose squares overflow: sums of squares and Gram products would
+    # turn into inf and NaN loadings.  Below this magnitude the block's sum of
+    # squares stays within float64 whatever the values are.  fmax/fmin skip NaN and
+    # need no block-sized temporary (the memory ceiling counts none).
+    limit = np.sqrt(np.finfo(np.float64).max / max(1, block.size))
+    if block.size and max(np.fmax.reduce(block, axis=None), -np.fmin.reduce(block, axis=None)) > limit:
+        huge = np.abs(block) > limit
+        first = np.unravel_index(int(np.argmax(huge)), huge.shape)
         raise DataError(
-            f"{source.path}: {int(nan.sum()):,} missing value(s) in {span} (the first block holding any; "
-            f"later blocks were not counted); first at {where(nan)}. Fill them with the column mean "
-            "with --missing fill-mean (missing='fill-mean'), or clean the data.")
+            f"{source.path}: {int(huge.sum()):,} value(s) in {span} are too large for a sum of squares in "
+            f"double precision (magnitude above {limit:.3g}); first at {where(huge)}, value {block[first]:.6g}. "
+            "Rescale those columns (for example divide them by a power of ten) or clean the data.")
 
 
 def feature_block_check(inp: RouteInput) -> Callable[[np.ndarray, int], np.ndarray]:

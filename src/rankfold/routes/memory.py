@@ -38,6 +38,9 @@ def run(inp: RouteInput) -> Decomposition:
     check_values(x, 0, "samples", inp, allow_missing=inp.missing == "fill-mean")
     record = PassRecord("load", "samples", 1, n, x.size * source.storage_dtype.itemsize,
                         time.perf_counter() - t0)
+    if inp.progress is not None:  # one read, one block: the same event a streamed pass gives
+        inp.progress({"pass": record.name, "block": 1, "blocks": 1, "bytes": record.bytes_read,
+                      "seconds": record.seconds})
     missing = np.isnan(x)
     if missing.any():
         present = (~missing).sum(axis=0)

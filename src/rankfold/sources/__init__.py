@@ -77,10 +77,14 @@ def open_source(path: str, *, samples_as: str = "rows", columns=None, exclude=No
     if fmt == "parquet":
         if samples_as != "rows":
             raise UsageError(f"{path}: Parquet rows are always samples; samples_as='columns' applies to Zarr and .npy")
-        return ParquetSource(path, columns=columns, exclude=exclude, id_column=id_column,
-                             missing_code=missing_code)
-    if columns or exclude or id_column:
+        source = ParquetSource(path, columns=columns, exclude=exclude, id_column=id_column,
+                               missing_code=missing_code)
+    elif columns or exclude or id_column:
         raise UsageError(f"{path}: column selection (columns, exclude, id_column) applies to Parquet sources only")
-    if fmt == "zarr":
-        return ZarrSource(path, samples_as=samples_as, array=array, missing_code=missing_code)
-    return NpySource(path, samples_as=samples_as, missing_code=missing_code)
+    elif fmt == "zarr":
+        source = ZarrSource(path, samples_as=samples_as, array=array, missing_code=missing_code)
+    else:
+        source = NpySource(path, samples_as=samples_as, missing_code=missing_code)
+    # The state every pass must find unchanged (Source.check_unchanged).
+    source.record_file_stats()
+    return source

@@ -18,7 +18,9 @@ arithmetic side free of dtype cases and lets decoding overlap the GEMM.
 
 from __future__ import annotations
 
+import datetime
 import fnmatch
+import os
 from abc import ABC, abstractmethod
 from dataclasses import dataclass
 from typing import Literal
@@ -87,6 +89,8 @@ class Source(ABC):
     native_axis: str
     sample_ids: np.ndarray | None = None
     missing_code: float | None = None
+    _opened_stats: dict | None = None  # file_stats() when opened (record_file_stats)
+    _passes_checked: int = 0
 
     @property
     def shape(self) -> tuple[int, int]:
@@ -137,6 +141,56 @@ class Source(ABC):
     def fingerprint(self) -> dict:
         """Identity of the data on disk: paths, sizes, modification times, shape."""
 
+    def file_stats(self) -> dict[str, dict]:
+        """What :meth:`check_unchanged` compares: path -> ``{"bytes", "mtime_ns"}``.
+
+        Sources backed by files override this (one entry per Parquet file; a
+        Zarr store is summarised by its file count, total size and latest
+        modification time).  The default watches nothing.
+        """
+        return {}
+
+    def record_file_stats(self) -> None:
+        """Note :meth:`file_stats` now, as the state later passes must find unchanged."""
+        self._opened_stats = self.file_stats()
+        self._passes_checked = 0
+
+    def check_unchanged(self, pass_name: str | None = None, *, after_last: bool = False) -> None:
+        """Refuse to start a pass when the files changed since the source was opened.
+
+        Called at the start of every pass (:func:`rankfold.routes.common.run_pass`),
+        and with ``after_last`` once the route has read everything
+        (:func:`rankfold.decompose`), before a result is written.  A table
+        rewritten between passes would mix two tables in one result, for example
+        a Gram matrix of the old rows with loadings of the new ones.  Costs one
+        ``stat`` per file (a directory walk for Zarr stores).
+
+        Raises
+        ------
+        SourceError
+            Naming the file, what changed (size, modification time, file count,
+            or removal) and between which passes.
+        """
+        if getattr(self, "_opened_stats", None) is None:
+            self.record_file_stats()
+        if not after_last:
+            self._passes_checked += 1
+        count = self._passes_checked
+        now = self.file_stats()
+        for path, before in self._opened_stats.items():
+            after = now.get(path)
+            if after == before:
+                continue
+            if after_last:
+                when = f"while pass {count} was being read" if count else "while it was being read"
+            else:
+                when = (f"between pass {count - 1} and pass {count}" if count > 1
+                        else "after it was opened and before pass 1")
+            if pass_name:
+                when += f" ({pass_name})"
+            raise SourceError(f"{path}: {_describe_change(before, after)} {when}; the table was modified "
+                              "while being read; rerun when it is stable")
+
     def read_sample_ids(self) -> np.ndarray | None:
         """Every sample's id in order, or None when the source has none."""
         return self.sample_ids
@@ -154,6 +208,30 @@ class Source(ABC):
         if self.missing_code is not None:
             block[block == self.missing_code] = np.nan
         return block
+
+
+def stat_entry(path: str) -> dict | None:
+    """``{"bytes", "mtime_ns"}`` of one file, or None when it is gone or unreadable."""
+    try:
+        st = os.stat(path)
+    except OSError:
+        return None
+    return {"bytes": st.st_size, "mtime_ns": st.st_mtime_ns}
+
+
+def _describe_change(before: dict, after: dict | None) -> str:
+    """Plain words for the first difference between two :meth:`Source.file_stats` entries."""
+    if after is None:
+        return "was removed or became unreadable"
+    if before.get("files") != after.get("files"):
+        return f"number of files changed from {before.get('files'):,} to {after.get('files'):,}"
+    if before["bytes"] != after["bytes"]:
+        return f"size changed from {before['bytes']:,} to {after['bytes']:,} bytes"
+
+    def stamp(ns: int) -> str:
+        return datetime.datetime.fromtimestamp(ns / 1e9).isoformat(sep=" ", timespec="milliseconds")
+
+    return f"modification time changed from {stamp(before['mtime_ns'])} to {stamp(after['mtime_ns'])}"
 
 
 def is_real_dtype(dtype) -> bool:

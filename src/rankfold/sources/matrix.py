@@ -70,6 +70,11 @@ class StoredMatrixSource(Source):
             "native_axis": self.native_axis,
         }
 
+    def file_stats(self) -> dict[str, dict]:
+        tree = _tree_stat(self.path)
+        return {os.path.abspath(self.path): {"files": tree["count"], "bytes": tree["bytes"],
+                                             "mtime_ns": tree["latest_mtime_ns"]}}
+
 
 def _tree_stat(path: str) -> dict:
     """Count, total size and latest modification time of the files under ``path``.

@@ -19,7 +19,7 @@ import numpy as np
 
 from rankfold.errors import MemoryLimitError, SourceError
 from rankfold.memory import format_bytes
-from rankfold.sources.base import Partition, Source, block_buffer, select_names
+from rankfold.sources.base import Partition, Source, block_buffer, select_names, stat_entry
 
 
 def _is_numeric(pa_type) -> bool:
@@ -74,6 +74,9 @@ class ParquetSource(Source):
         for f in self.files:
             try:
                 meta = pq.read_metadata(f)
+            except PermissionError:
+                raise SourceError(f"{f}: permission denied; every file of the table must be readable "
+                                  "by this user") from None
             except Exception as exc:
                 raise SourceError(f"{f}: not a readable Parquet file ({type(exc).__name__}: {exc})") from None
             schemas.append(meta.schema.to_arrow_schema())
@@ -85,13 +88,17 @@ class ParquetSource(Source):
         names = list(first.names)
         if len(set(names)) != len(names):
             dup = sorted({n for n in names if names.count(n) > 1})
-            raise SourceError(f"{self.files[0]}: duplicate column names {', '.join(dup)}")
+            raise SourceError(f"{self.files[0]}: duplicate column name(s) {', '.join(map(repr, dup))}; a "
+                              "column must be named once to be told apart: rename the copies when writing the file")
         if id_column is not None and id_column not in names:
             raise SourceError(f"{path}: id column {id_column!r} not found; columns: {', '.join(names[:8])}")
         candidates = [n for n in names if n != id_column]
         if exclude:
             dropped = {candidates[i] for i in select_names(candidates, list(exclude), f"{path} (--exclude)")}
             candidates = [n for n in candidates if n not in dropped]
+            if not candidates:
+                raise SourceError(f"{path}: no feature columns left after selection: --exclude "
+                                  f"{' '.join(exclude)} leaves out every column")
         picked = [candidates[i] for i in select_names(candidates, columns, path)]
         bad = [f"{n} ({first.field(n).type})" for n in picked if not _is_numeric(first.field(n).type)]
         if bad:
@@ -338,6 +345,9 @@ class ParquetSource(Source):
             files.append({"path": os.path.abspath(f), "bytes": st.st_size, "mtime_ns": st.st_mtime_ns})
         return {"kind": "parquet", "path": os.path.abspath(self.path), "files": files,
                 "shape": [self.n_samples, self.n_features], "columns": list(self.feature_names)}
+
+    def file_stats(self) -> dict[str, dict]:
+        return {os.path.abspath(f): stat_entry(f) for f in self.files}
 
     def close(self) -> None:
         self._handles.clear()

@@ -125,9 +125,30 @@ class ZarrSource(StoredMatrixSource):
             return np.asarray(self._arr[start:stop, cols])
         except Exception as exc:  # codecs raise many types for corrupt bytes
             first, last = start // self._chunk_rows, (stop - 1) // self._chunk_rows
-            which = f"chunk row {first}" if first == last else f"chunk rows {first}-{last}"
+            which = self._failing_chunk(first, last, cols) or (
+                f"chunk row {first}" if first == last else f"chunk rows {first}-{last}")
             raise SourceError(f"{self.path}: cannot decode {which} (stored rows {start:,}-{stop - 1:,}): "
                               f"{type(exc).__name__}: {exc}; the store may be corrupt or truncated") from None
+
+    def _failing_chunk(self, first: int, last: int, cols) -> str | None:
+        """``"chunk c/3/1 (file ...)"`` for the first chunk in rows ``first..last`` that fails to decode.
+
+        Runs only after a read failed, so decoding chunk by chunk costs nothing in a healthy run.
+        """
+        col_chunk = int(self._arr.chunks[1])
+        c0 = (cols.start or 0) // col_chunk
+        c1 = ((cols.stop if cols.stop is not None else self.stored_shape[1]) - 1) // col_chunk
+        for r in range(first, last + 1):
+            for c in range(c0, c1 + 1):
+                try:
+                    self._arr[r * self._chunk_rows:(r + 1) * self._chunk_rows, c * col_chunk:(c + 1) * col_chunk]
+                except Exception:
+                    try:
+                        key = self._arr.metadata.encode_chunk_key((r, c))
+                    except Exception:  # an unusual key encoding: the grid position still locates it
+                        return f"chunk ({r}, {c})"
+                    return f"chunk {key} (file {os.path.join(self.path, key)})"
+        return None
 
     def _rows(self, start: int, stop: int, cols: slice) -> np.ndarray:
         return self._get(start, stop, cols)
