@@ -14,9 +14,14 @@ project(result, source, ...) -> Projection
     Scores, residuals and flags of new samples in an existing decomposition.
 open_projection(path) -> Projection
     Open a projection written by :func:`project`.
+compare_subset(source, rank, ...) -> dict
+    Exact against randomized components on a reproducible random subset.
+compare_results(a, b, ...) -> dict
+    The per-component agreement of two stored results of the same source.
 """
 
 from rankfold.api import decompose, plan
+from rankfold.compare import compare_results, compare_subset
 from rankfold.errors import (
     CheckpointError,
     DataError,
@@ -36,6 +41,8 @@ __version__ = "0.1.0"
 __all__ = [
     "decompose",
     "plan",
+    "compare_subset",
+    "compare_results",
     "open_result",
     "open_source",
     "project",

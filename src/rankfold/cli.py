@@ -72,6 +72,24 @@ def _parser() -> argparse.ArgumentParser:
     s.add_argument("result", metavar="RESULT.zarr")
     s.add_argument("--top", type=int, default=None, help="show only the first N components")
 
+    c = sub.add_parser("compare", help="exact against randomized on a subset, or two stored results",
+                       description="With one data source: draw a reproducible subset, run the exact route and "
+                       "randomized settings on it, and recommend the cheapest setting that meets the target. "
+                       "With two result stores: the same per-component figures for the second against the first.")
+    c.add_argument("paths", nargs="+", metavar="SOURCE | RESULT_A RESULT_B",
+                   help="a Parquet/Zarr/.npy table, or two rankfold result stores")
+    c.add_argument("--out", "-o", required=True, metavar="REPORT_DIR", help="report folder to create")
+    c.add_argument("--rank", "-k", type=int, help="number of components compared (subset comparison)")
+    c.add_argument("--subset", metavar="FRACTION", help="expected share of the samples kept: 5%%, 0.05 (default 5%%)")
+    c.add_argument("--feature-subset", metavar="FRACTION", help="share of the features kept (default: all)")
+    c.add_argument("--settings", metavar="SPEC",
+                   help="randomized settings, e.g. 'subspace:p=10,q=2;krylov:q=1;one-pass' (default: subspace "
+                        "q=0,1,2, krylov q=2 and one-pass, p=10)")
+    c.add_argument("--target-angle", type=float, default=None, metavar="DEG",
+                   help="largest angle to the exact components a setting may have (default 5 degrees)")
+    c.add_argument("--seed", type=int, help="seed of the subset and of the settings (default 0)")
+    _source_options(c)
+
     r = sub.add_parser("report", help="write a self-contained HTML report of a result (figures, numbers as JSON)")
     r.add_argument("result", metavar="RESULT.zarr")
     r.add_argument("--out", "-o", metavar="DIR",
@@ -219,8 +237,25 @@ def _demo(args) -> int:
     return 0
 
 
+def _compare(args) -> int:
+    from rankfold.compare.engine import DEFAULT_TARGET_ANGLE, compare_paths, report_page
+    from rankfold.compare.text import comparison_lines
+
+    comparison = compare_paths(
+        args.paths, rank=args.rank, out=args.out,
+        target_angle=DEFAULT_TARGET_ANGLE if args.target_angle is None else args.target_angle,
+        subset=args.subset, feature_subset=args.feature_subset, settings=args.settings, seed=args.seed,
+        memory_limit=args.memory_limit, standardize=args.standardize, missing=args.missing,
+        samples_as=args.samples_as, columns=args.columns, exclude=args.exclude,
+        missing_code=args.missing_code, array=args.array)
+    print("\n".join(comparison_lines(comparison)))
+    page = report_page(args.out)
+    print(f"report: {page or os.path.join(args.out, 'comparison.json')}")
+    return 0
+
+
 COMMANDS = {"decompose": _decompose, "plan": _plan, "project": _project, "show": _show, "report": _report,
-            "demo": _demo}
+            "demo": _demo, "compare": _compare}
 
 
 def main(argv: list[str] | None = None) -> int:
