@@ -409,3 +409,38 @@ def test_cli_cluster_local_2_and_unreachable_scheduler(planted, write_parquet, t
 
 def _src_dir() -> str:
     return os.path.dirname(os.path.dirname(os.path.abspath(rankfold.__file__)))
+
+
+class _Crash(Exception):
+    """Stands in for the client process dying."""
+
+
+def test_a_cluster_run_stopped_after_a_pass_resumes_serially(client, make_planted, write_zarr, limit_for_blocks,
+                                                           tmp_path):
+    # A cluster pass is saved whole when it ends (routes/common.run_pass); a run that dies in
+    # the next pass resumes from the checkpoint -- here serially -- without reading the first
+    # pass again, and gives the serial answer (reference: an uninterrupted serial run, 1e-12).
+    import json
+
+    from rankfold.checkpoint import checkpoint_folder
+
+    x = make_planted(600, 24, seed=5)
+    path = write_zarr(x, chunks=(40, 24))
+    kw = dict(route="sketch", power_iterations=1, memory_limit="64MB", seed=3)
+    serial = rankfold.decompose(path, 3, **kw)
+    out = tmp_path / "r.zarr"
+
+    def die_in_second_pass(event):
+        if event["pass"] == "Rayleigh-Ritz":
+            raise _Crash()
+
+    with pytest.raises(_Crash):
+        rankfold.decompose(path, 3, out=out, cluster=client, checkpoint_every=0, progress=die_in_second_pass, **kw)
+    with open(os.path.join(checkpoint_folder(out), "manifest.json")) as fh:
+        saved = json.load(fh)["passes"]
+    assert saved[0]["name"] == "moments and power iteration" and saved[0]["complete"]
+    messages = []
+    resumed = rankfold.decompose(path, 3, out=out, on_resume=messages.append, **kw)
+    assert messages and "pass 2 of" in messages[0]
+    _assert_same(resumed, serial, EXACT)
+    assert not os.path.exists(checkpoint_folder(out))

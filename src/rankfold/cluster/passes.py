@@ -36,6 +36,16 @@ def block_ranges(n_blocks: int, n_tasks: int) -> list[tuple[int, int]]:
     return [(a, b) for a, b in zip(edges[:-1], edges[1:]) if b > a]
 
 
+def _extras(state) -> dict:
+    """Attributes of ``state`` that ``to_bytes`` does not carry (lookup tables, widths, callbacks)."""
+    return {k: v for k, v in vars(state).items() if k not in type(state)._fields and k not in MESSAGE_ONLY}
+
+
+def runs_on_client(state) -> bool:
+    """Whether ``state`` calls back into this process while folding, so its pass cannot be shipped."""
+    return any(callable(v) for v in _extras(state).values())
+
+
 def cluster_pass(name: str, inp, partition: Partition, state, prepare) -> tuple[object, PassRecord]:
     """Run one pass of ``partition`` on ``inp.cluster``; same contract as ``run_pass``.
 
@@ -44,7 +54,7 @@ def cluster_pass(name: str, inp, partition: Partition, state, prepare) -> tuple[
     each task.  A state that calls back into this process while folding runs
     here instead, serially.  Returns the merged state and the pass record.
     """
-    extras = {k: v for k, v in vars(state).items() if k not in type(state)._fields and k not in MESSAGE_ONLY}
+    extras = _extras(state)
     if any(callable(v) for v in extras.values()):
         # The state hands rows to a callback in this process as it folds (scores written
         # while they are computed, the randomized route's captured thin product): such a

@@ -40,10 +40,16 @@ class RowScores(FoldState):
     sink = None  # not serialized (nor the column map): set them again after from_bytes
     columns = None
 
-    def __init__(self, loadings, center, scale, sink, columns=None):
+    def __init__(self, loadings, center, scale, sink, columns=None, missing: bool = True):
         self.loadings, self.center, self.scale = loadings, center, scale
         self.sink = sink
         self.columns = columns
+        # Each elementwise sweep over a block costs about as much as the product itself
+        # (k is small): skip the NaN scan when none can be present and unit scales.
+        self.missing = missing
+        self.unit = bool(np.all(scale == 1.0))
+
+    missing, unit = True, False  # for states rebuilt by from_bytes: every step, as before
 
     def update(self, block: np.ndarray, start: int = 0) -> "RowScores":
         if self.columns is not None:
@@ -51,8 +57,10 @@ class RowScores(FoldState):
         for a in range(0, block.shape[0], SLAB):
             slab = block[a:a + SLAB]
             slab -= self.center
-            slab[np.isnan(slab)] = 0.0
-            slab /= self.scale
+            if self.missing:
+                slab[np.isnan(slab)] = 0.0
+            if not self.unit:
+                slab /= self.scale
             self.sink(start + a, slab @ self.loadings, np.einsum("ij,ij->i", slab, slab))
         return self
 

@@ -52,13 +52,19 @@ class CovarianceProduct(FoldState):
     capture, capture_width = None, 0  # not serialized: a state rebuilt by from_bytes captures nothing
 
     def __init__(self, basis: np.ndarray, center: np.ndarray, scale: np.ndarray, capture=None,
-                 capture_width: int = 0):
+                 capture_width: int = 0, missing: bool = True):
         self.basis = basis
         self.center = center
         self.scale = scale
         self.product = np.zeros_like(basis)
         self.capture, self.capture_width = capture, capture_width
+        # Skip the NaN scan when no value can be missing, and the division by unit scales:
+        # each is a sweep over the block (measured about 6 s of 50 on the wide benchmark).
+        self.missing = missing
+        self.unit = bool(np.all(scale == 1.0))
         self.resumable = capture is None  # a captured product lives outside the state
+
+    missing, unit = True, False  # for states rebuilt by from_bytes: every step, as before
 
     def update(self, block: np.ndarray, start: int = 0) -> "CovarianceProduct":
         # Slabs of SLAB rows bound the temporaries (the thin product B Q and the
@@ -66,8 +72,10 @@ class CovarianceProduct(FoldState):
         for a in range(0, block.shape[0], SLAB):
             slab = block[a:a + SLAB]
             slab -= self.center
-            slab[np.isnan(slab)] = 0.0  # a filled value equals the mean: zero once centered
-            slab /= self.scale
+            if self.missing:
+                slab[np.isnan(slab)] = 0.0  # a filled value equals the mean: zero once centered
+            if not self.unit:
+                slab /= self.scale
             thin = slab @ self.basis
             self.product += slab.T @ thin
             if self.capture is not None:

@@ -102,10 +102,6 @@ def run_pass(name: str, inp: RouteInput, partition: Partition, state,
     SIGINT or SIGTERM (:mod:`rankfold.stopping`) saves the state and raises
     :class:`~rankfold.errors.Interrupted`.
     """
-    if inp.cluster is not None:
-        from rankfold.cluster.passes import cluster_pass
-
-        return cluster_pass(name, inp, partition, state, prepare)
     source = inp.source
     source.check_unchanged(name)  # a table rewritten between passes would mix two tables
     total = len(partition)
@@ -113,9 +109,21 @@ def run_pass(name: str, inp: RouteInput, partition: Partition, state,
     if inp.checkpoint is not None:
         cursor = inp.checkpoint.begin_pass(name, partition, getattr(state, "resumable", True))
     first, read, before = 0, 0, 0.0
+    if cursor is not None and cursor.complete:
+        return cursor.restore(state), PassRecord(**cursor.record)
+    if inp.cluster is not None:
+        from rankfold.cluster.passes import cluster_pass, runs_on_client
+
+        if not runs_on_client(state):
+            # The workers fold block ranges of their own, so the pass is saved whole when it
+            # ends (and a pass begun serially is folded again from its start).
+            state, record = cluster_pass(name, inp, partition, state, prepare)
+            if cursor is not None:
+                cursor.finish(state, record.as_dict())
+            if stopping.requested():
+                raise Interrupted(_stopped_message(stopping.requested(), inp, name, cursor))
+            return state, record
     if cursor is not None:
-        if cursor.complete:
-            return cursor.restore(state), PassRecord(**cursor.record)
         if cursor.blocks_done:
             state = cursor.restore(state)
             first, read, before = cursor.blocks_done, cursor.bytes_read, cursor.seconds

@@ -81,7 +81,8 @@ def project(inp: RouteInput, loadings, center, scale, sink, passes: list, label:
     if (axis or source.native_axis) == "samples":
         fixed = buffer_bytes(n, k) + loadings_bytes + source.fixed_read_bytes("samples")
         budget = block_budget(inp.memory_limit, fixed, source.min_block_bytes("samples"), "the scores pass")
-        state = RowScores(loadings, center, scale, sink, positions)
+        # Missing values can only be present under fill-mean: the route (or prepare) refused them otherwise.
+        state = RowScores(loadings, center, scale, sink, positions, missing=inp.missing == "fill-mean")
         _, record = run_pass(label, inp, source.partition("samples", budget), state, prepare)
         passes.append(record)
         return

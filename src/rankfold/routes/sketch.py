@@ -217,12 +217,12 @@ def _run_rows(inp: RouteInput, partition, omega, tests, tall_in_memory) -> Decom
 
     if inp.sketch != "one-pass":
         def apply(basis, label, last):
-            state = CovarianceProduct(basis, center, scale)
+            state = CovarianceProduct(basis, center, scale, missing=fill)
             if last and tall_in_memory is not None:
                 width = basis.shape[1] - tests.shape[1]
                 parts.tall = TallProduct(n, width, None if tall_in_memory else scratch_folder(inp),
                                          scratch_chunk_bytes(inp.memory_limit))
-                state = CovarianceProduct(basis, center, scale, parts.tall.capture, width)
+                state = CovarianceProduct(basis, center, scale, parts.tall.capture, width, missing=fill)
             state, rec = run_pass(label, inp, partition, state, check)
             passes_done.append(rec)
             return state.product
