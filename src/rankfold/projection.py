@@ -150,9 +150,13 @@ def project(result, source, *, out=None, format: str = "zarr", memory_limit=None
                 every[start:start + len(r)] = r
                 rows.write(start, scores=z.astype(dtype, copy=False), residual=r, residual_fraction=f)
 
-            scores_stage.project(inp, loadings, center, scale, sink, passes, "projection", prepare=prepare,
-                                 positions=positions)
-            rows.close()
+            try:
+                scores_stage.project(inp, loadings, center, scale, sink, passes, "projection", prepare=prepare,
+                                     positions=positions)
+                rows.close()
+            except BaseException:
+                rows.abort()  # before the partial store is removed
+                raise
             flag = _flag(res, every)
             flagged = every > flag["cutoff"]
             ids = src.read_sample_ids()

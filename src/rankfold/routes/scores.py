@@ -42,20 +42,24 @@ def write(dec: Decomposition, inp: RouteInput, arrays: dict, dtype) -> np.ndarra
         writer.write(start, scores=z.astype(dtype, copy=False), residual=r, residual_fraction=f)
 
     parts = dec.parts
-    if parts.scores is not None:
-        step = chunk_rows(n, k)
-        for a in range(0, n, step):
-            sink(a, parts.scores[a:a + step], parts.sumsq[a:a + step])
-    elif parts.tall is not None:
-        try:
-            for a, y, sumsq in parts.tall.chunks():
-                sink(a, y @ parts.coefficients, sumsq)
-        finally:
-            parts.tall.remove()
-    else:
-        # Along samples, like the route before it: whole samples need no n x k sum in memory.
-        project(inp, dec.loadings, dec.center, dec.scale, sink, dec.passes, NAME, axis="samples")
-    writer.close()
+    try:
+        if parts.scores is not None:
+            step = chunk_rows(n, k)
+            for a in range(0, n, step):
+                sink(a, parts.scores[a:a + step], parts.sumsq[a:a + step])
+        elif parts.tall is not None:
+            try:
+                for a, y, sumsq in parts.tall.chunks():
+                    sink(a, y @ parts.coefficients, sumsq)
+            finally:
+                parts.tall.remove()
+        else:
+            # Along samples, like the route before it: whole samples need no n x k sum in memory.
+            project(inp, dec.loadings, dec.center, dec.scale, sink, dec.passes, NAME, axis="samples")
+        writer.close()
+    except BaseException:
+        writer.abort()  # before the caller removes the store the writes go to
+        raise
     return every
 
 

@@ -223,7 +223,12 @@ def _run_rows(inp: RouteInput, partition, omega, tests, tall_in_memory) -> Decom
                 parts.tall = TallProduct(n, width, None if tall_in_memory else scratch_folder(inp),
                                          scratch_chunk_bytes(inp.memory_limit))
                 state = CovarianceProduct(basis, center, scale, parts.tall.capture, width, missing=fill)
-            state, rec = run_pass(label, inp, partition, state, check)
+            try:
+                state, rec = run_pass(label, inp, partition, state, check)
+            except BaseException:
+                if parts.tall is not None:
+                    parts.tall.remove()  # stops its writer before the scratch folder goes
+                raise
             passes_done.append(rec)
             return state.product
 
