@@ -104,9 +104,10 @@ def fmt_bytes(n: float) -> str:
 def parent_main(args) -> None:
     tables = {
         "tall": (bench_tall.ensure_data(tall_args(args))["zarr"],
-                 {"route": "features", "memory_limit": args.memory_limit}),
+                 {"route": "features", "memory_limit": args.memory_limit, "scores": args.with_scores}),
         "wide": (bench_wide.ensure_data(wide_args(args))["zarr"],
-                 {"route": "sketch", "memory_limit": args.memory_limit, "sketch": "subspace"}),
+                 {"route": "sketch", "memory_limit": args.memory_limit, "sketch": "subspace",
+                  "scores": args.with_scores}),
     }
     lines = [f"{'table':6} {'setup':8} {'median s':>9} {'vs serial':>9} {'start-up s':>10} {'read':>10} "
              f"{'moved (bound)':>14} {'worker->worker':>15} {'tasks':>6}"]
@@ -143,6 +144,8 @@ def main(argv=None) -> None:
     p.add_argument("--rank", type=int, default=20, help="components (default 20)")
     p.add_argument("--memory-limit", default="1GB", help="rankfold's ceiling, per process (default 1GB)")
     p.add_argument("--repeat", type=int, default=3, help="runs per setup; the median is reported (default 3)")
+    p.add_argument("--with-scores", action="store_true",
+                   help="write scores too (their passes run on the client, serially; default: without)")
     p.add_argument("--child", action="store_true", help=argparse.SUPPRESS)
     p.add_argument("--setup", help=argparse.SUPPRESS)
     p.add_argument("--data", help=argparse.SUPPRESS)
