@@ -335,3 +335,22 @@ def one_blas_thread():
 
     with threadpool_limits(limits=1, user_api="blas"):
         yield
+
+
+# ---------------------------------------------------------------- data sets shipped with scikit-learn
+
+
+@pytest.fixture(scope="session")
+def iris():
+    """The iris measurements bundled with scikit-learn (150 x 4), as float64."""
+    from sklearn.datasets import load_iris
+
+    return load_iris().data.astype(np.float64)
+
+
+@pytest.fixture(scope="session")
+def digits():
+    """The 8 x 8 digit images bundled with scikit-learn (1,797 x 64), as float64."""
+    from sklearn.datasets import load_digits
+
+    return load_digits().data.astype(np.float64)

@@ -36,20 +36,6 @@ def _parquet(tmp_path, x, name="table", names=None):
     return path
 
 
-@pytest.fixture(scope="module")
-def iris():
-    from sklearn.datasets import load_iris
-
-    return load_iris().data.astype(np.float64)
-
-
-@pytest.fixture(scope="module")
-def digits():
-    from sklearn.datasets import load_digits
-
-    return load_digits().data.astype(np.float64)
-
-
 def _saved(folder) -> dict:
     """The comparison in a report folder's comparison.json (the report module wraps it with its
     format marker and figure names; without that module it is written as is)."""

@@ -16,20 +16,6 @@ from conftest import ROUTES, blocks_read, limit_for_blocks
 IRIS_COLUMNS = ["sepal_length", "sepal_width", "petal_length", "petal_width"]
 
 
-@pytest.fixture(scope="module")
-def iris():
-    from sklearn.datasets import load_iris
-
-    return load_iris().data.astype(np.float64)
-
-
-@pytest.fixture(scope="module")
-def digits():
-    from sklearn.datasets import load_digits
-
-    return load_digits().data.astype(np.float64)
-
-
 def _digits_names():
     return [f"pixel_{i // 8}_{i % 8}" for i in range(64)]
 

@@ -24,7 +24,7 @@ import numpy as np
 
 from rankfold.errors import OutputError, SourceError, UsageError
 from rankfold.memory import default_memory_limit, parse_memory, return_freed_memory_promptly
-from rankfold.result import Result, ResultWriter, _remove, open_result
+from rankfold.result import Result, ResultWriter, _remove, check_parent_folder, open_result
 from rankfold.routes import scores as scores_stage
 from rankfold.routes.common import RouteInput, check_values
 from rankfold.sample_outputs import (DEFAULT_FLAG_THRESHOLD, SCORE_DTYPES, RowWriter, chunk_rows, flag_rule,
@@ -251,11 +251,7 @@ def _check_projection_out(out: str, overwrite: bool) -> None:
                           "remove it yourself or choose another --out")
     if os.path.lexists(out) and not overwrite:
         raise OutputError(f"{out}: already exists; choose another --out or pass --overwrite to replace it")
-    parent = os.path.dirname(os.path.abspath(out))
-    if not os.path.isdir(parent):
-        raise OutputError(f"{out}: the folder {parent} does not exist; create it first")
-    if not os.access(parent, os.W_OK):
-        raise OutputError(f"{out}: the folder {parent} is not writable")
+    check_parent_folder(out)
 
 
 def _is_projection(path: str) -> bool:

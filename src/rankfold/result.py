@@ -170,11 +170,16 @@ def check_output_path(out: str, overwrite: bool) -> None:
         if not _is_result(out):
             raise OutputError(f"{out}: exists and is not a rankfold result, so --overwrite will not "
                               "replace it; remove it yourself or choose another --out")
+    check_parent_folder(out)
+
+
+def check_parent_folder(out: str, hint: str = "") -> None:
+    """Refuse an output whose folder is missing or not writable (results, projections, reports)."""
     parent = os.path.dirname(os.path.abspath(out))
     if not os.path.isdir(parent):
         raise OutputError(f"{out}: the folder {parent} does not exist; create it first")
-    if not os.access(parent, os.W_OK):
-        raise OutputError(f"{out}: the folder {parent} is not writable")
+    if not os.access(parent, os.W_OK | os.X_OK):
+        raise OutputError(f"{out}: the folder {parent} is not writable{hint}")
 
 
 def _is_result(path: str) -> bool:

@@ -12,6 +12,7 @@ import os
 import shutil
 
 from rankfold.errors import OutputError
+from rankfold.result import check_parent_folder
 
 REPORT_MARKER = "rankfold_report"  # key in report.json / comparison.json naming the format version
 REPORT_VERSION = 1
@@ -35,11 +36,7 @@ def check_report_folder(out_dir: str, overwrite: bool) -> None:
             if not is_report(out_dir):
                 raise OutputError(f"{out_dir}: exists and is not a rankfold report, so --overwrite will not "
                                   "replace it; remove it yourself or choose another folder")
-    parent = os.path.dirname(os.path.abspath(out_dir))
-    if not os.path.isdir(parent):
-        raise OutputError(f"{out_dir}: the folder {parent} does not exist; create it first")
-    if not os.access(parent, os.W_OK | os.X_OK):
-        raise OutputError(f"{out_dir}: the folder {parent} is not writable; choose a report folder elsewhere")
+    check_parent_folder(out_dir, hint="; choose a report folder elsewhere")
 
 
 def is_report(path: str) -> bool:
