@@ -235,23 +235,28 @@ def write_table(write_npy, write_zarr, write_parquet, write_parquet_folder):
 # ---------------------------------------------------------------- memory limits
 
 
-def limit_for_blocks(path: str, route: str, blocks: int, *, rank: int = 1, **open_kw) -> int:
-    """A memory limit under which ``route`` reads ``path`` in about ``blocks`` blocks."""
+def limit_for_blocks(path: str, route: str, blocks: int, *, rank: int = 1, stored: bool = False,
+                     **open_kw) -> int:
+    """A memory limit under which ``route`` reads ``path`` in about ``blocks`` blocks.
+
+    ``stored``: the run writes a result store (per-sample outputs go through the writer's
+    buffers) rather than returning them in memory.
+    """
     from rankfold.routes import ROUTES as ROUTE_MODULES
-    from rankfold.sample_outputs import buffer_bytes, held_bytes
+    from rankfold.sample_outputs import stage_bytes
     from rankfold.sources import open_source
 
     src = open_source(path, **open_kw)
     try:
         n, m = src.shape
         if route == "memory":
-            return ROUTE_MODULES["memory"].fixed_bytes(n, m, rank) + buffer_bytes(n, rank) + held_bytes(n, rank) + 1
+            return ROUTE_MODULES["memory"].fixed_bytes(n, m, rank) + stage_bytes(n, rank, held=not stored) + 1
         axis = "samples" if route == "features" else "features"
         units = max(1, math.ceil(src.length(axis) / blocks))
         fixed = ROUTE_MODULES[route].fixed_bytes(n, m, rank) + src.fixed_read_bytes(axis)
         # the per-sample stage (scores) holds this beside the state, and a result returned
         # without a store keeps its per-sample arrays in memory (counted against the ceiling too)
-        fixed += buffer_bytes(n, rank) + held_bytes(n, rank)
+        fixed += stage_bytes(n, rank, held=not stored)
         unit = src.bytes_per_unit(axis)
         if axis == "samples" and hasattr(src, "split_group_reserve"):
             # Parquet: blocks smaller than a row group stream it, which needs a reserve

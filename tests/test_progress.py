@@ -52,7 +52,7 @@ def limit(path, route):
     """A ceiling that makes ``route`` read the 600 x 12 table in several blocks."""
     from conftest import limit_for_blocks
 
-    return "250KB" if route == "sketch" else limit_for_blocks(path, route, 4, rank=2)
+    return "250KB" if route == "sketch" else limit_for_blocks(path, route, 4, rank=2, stored=True)
 
 
 def _record(views):

@@ -50,7 +50,7 @@ def test_store_is_a_zarr_v3_group_with_the_documented_layout(planted, write_npy,
 
     path = write_npy(planted)
     out = str(tmp_path / "result.zarr")
-    limit = limit_for_blocks(path, route, 4, rank=RANK)
+    limit = limit_for_blocks(path, route, 4, rank=RANK, stored=True)
     res = rankfold.decompose(path, RANK, route=route, out=out, memory_limit=limit)
     n, m = planted.shape
 
@@ -126,7 +126,8 @@ def test_sample_ids_from_parquet_id_column(planted, write_parquet_folder, tmp_pa
     path = write_parquet_folder(planted, ids=ids, id_column="record_id")
     out = str(tmp_path / "result.zarr")
     res = rankfold.decompose(path, RANK, route=route, out=out, id_column="record_id",
-                             memory_limit=limit_for_blocks(path, route, 4, rank=RANK, id_column="record_id"))
+                             memory_limit=limit_for_blocks(path, route, 4, rank=RANK, id_column="record_id",
+                                                                   stored=True))
     if route != "memory":
         assert min(blocks_read(res)) >= 3
     assert list(res.feature_names) == [f"x{j:02d}" for j in range(planted.shape[1])]
@@ -148,7 +149,8 @@ def test_zarr_coordinates_become_names_and_ids(planted, write_zarr, tmp_path):
     path = write_zarr(planted, "columns", feature_names=names, sample_ids=ids)
     out = str(tmp_path / "result.zarr")
     res = rankfold.decompose(path, RANK, samples_as="columns", route="samples", out=out,
-                             memory_limit=limit_for_blocks(path, "samples", 4, rank=RANK, samples_as="columns"))
+                             memory_limit=limit_for_blocks(path, "samples", 4, rank=RANK, samples_as="columns",
+                                                                   stored=True))
     assert list(res.feature_names) == names
     np.testing.assert_array_equal(res.sample_ids[:], ids)
     assert res.scores.shape == (planted.shape[0], RANK)
@@ -157,7 +159,9 @@ def test_zarr_coordinates_become_names_and_ids(planted, write_zarr, tmp_path):
 @pytest.mark.parametrize("route", ROUTES)
 def test_open_result_round_trip(planted, write_parquet, tmp_path, route):
     path = write_parquet(planted)
-    kw = dict(route=route, memory_limit=limit_for_blocks(path, route, 4, rank=RANK), standardize=True)
+    # one ceiling for both runs: room for in-memory outputs and for the store's buffers
+    limit = max(limit_for_blocks(path, route, 4, rank=RANK, stored=s) for s in (False, True))
+    kw = dict(route=route, memory_limit=limit, standardize=True)
     mem = rankfold.decompose(path, RANK, **kw)
     assert mem.path is None
     out = str(tmp_path / "r.zarr")
@@ -216,7 +220,7 @@ def test_open_result_refuses_a_folder_that_is_not_a_result(tmp_path, write_zarr,
 @pytest.mark.parametrize("standardize", [False, True], ids=["cov", "corr"])
 def test_one_block_and_many_blocks_agree(planted, write_table, tmp_path, fmt, route, standardize):
     path, samples_as = write_table(planted, fmt)
-    many = limit_for_blocks(path, route, 12, rank=RANK, samples_as=samples_as)
+    many = limit_for_blocks(path, route, 12, rank=RANK, samples_as=samples_as, stored=True)
     one = rankfold.decompose(path, RANK, route=route, samples_as=samples_as, memory_limit="256MB",
                              standardize=standardize, out=str(tmp_path / "one.zarr"))
     split = rankfold.decompose(path, RANK, route=route, samples_as=samples_as, memory_limit=many,

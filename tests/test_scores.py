@@ -42,7 +42,8 @@ def _numpy_outputs(x, loadings, standardize=False):
 def test_stored_scores_and_residuals_match_numpy(planted, write_table, tmp_path, limit_for_blocks, fmt, route):
     path, samples_as = write_table(planted, fmt)
     out = str(tmp_path / "r.zarr")
-    limit = limit_for_blocks(path, route, 4, rank=RANK, samples_as=samples_as) if route != "sketch" else "64MB"
+    limit = (limit_for_blocks(path, route, 4, rank=RANK, samples_as=samples_as, stored=True)
+             if route != "sketch" else "64MB")
     res = rankfold.decompose(path, RANK, route=route, samples_as=samples_as, out=out, memory_limit=limit,
                              scores_dtype="float64", standardize=True)
     scores, residual, fraction = _numpy_outputs(planted, res.loadings, standardize=True)

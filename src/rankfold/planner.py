@@ -21,7 +21,7 @@ from rankfold.errors import MemoryLimitError
 from rankfold.machine import MachineSpeed
 from rankfold.memory import format_bytes
 from rankfold.routes import features, memory, samples, sketch
-from rankfold.sample_outputs import TallProduct, buffer_bytes, held_bytes, scratch_chunk_bytes, writer_bytes
+from rankfold.sample_outputs import TallProduct, scratch_chunk_bytes, stage_bytes, writer_bytes
 
 EXACT = ("memory", "features", "samples")
 # Above this many values an SVD of the whole table costs more than it is worth
@@ -132,7 +132,7 @@ def _estimate(route: str, req: PlanRequest, speed: MachineSpeed) -> RouteEstimat
     read_pass = req.table_bytes / speed.read_bytes_per_s
     scratch = 0
     gemm = speed.gemm_flops_per_s
-    outputs = (buffer_bytes(n, k) + (held_bytes(n, k) if req.outputs_held else 0)) if req.scores else 0
+    outputs = stage_bytes(n, k, req.outputs_held) if req.scores else 0
     if route == "memory":
         fixed = memory.fixed_bytes(n, m, k) + outputs
         flops = 4.0 * n * m * min(n, m) + 3.0 * n * m

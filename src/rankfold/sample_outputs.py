@@ -56,7 +56,7 @@ def chunk_rows(n_samples: int, width: int, itemsize: int = 8, chunk_bytes: int =
 
 def writer_bytes(n_samples: int, width: int, chunk_bytes: int = CHUNK_BYTES) -> int:
     """Memory a :class:`RowWriter` of ``width`` float64 columns holds: at most three chunks' rows."""
-    return 3 * chunk_rows(n_samples, width, chunk_bytes=chunk_bytes) * width * 8
+    return min(3 * chunk_rows(n_samples, width, chunk_bytes=chunk_bytes), 2 * n_samples) * width * 8
 
 
 def buffer_bytes(n_samples: int, rank: int) -> int:
@@ -67,12 +67,21 @@ def buffer_bytes(n_samples: int, rank: int) -> int:
     the flag.  The flag's own temporaries (a few
     vectors of ``n``) come after the last pass, once the blocks are freed.
     """
-    return 3 * chunk_rows(n_samples, rank) * (rank + 2) * 8 + n_samples * 8
+    rows = min(3 * chunk_rows(n_samples, rank), 2 * n_samples)  # a short table never fills three chunks
+    return rows * (rank + 2) * 8 + n_samples * 8
 
 
 def held_bytes(n_samples: int, rank: int) -> int:
     """Per-sample outputs kept in memory (a result without a store): float64 scores, residuals, flags."""
     return n_samples * (rank + 2) * 8 + n_samples
+
+
+def stage_bytes(n_samples: int, rank: int, held: bool) -> int:
+    """Memory of the per-sample stage: the arrays themselves when held in memory (their rows go
+    straight in, with no chunk buffers), else the writer's buffers; and every residual, for the flag."""
+    if held:
+        return held_bytes(n_samples, rank) + n_samples * 8
+    return buffer_bytes(n_samples, rank)
 
 
 def scratch_chunk_bytes(memory_limit: int) -> int:

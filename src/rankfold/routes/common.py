@@ -14,7 +14,7 @@ from rankfold.checkpoint import Checkpointer
 from rankfold.errors import DataError, Interrupted
 from rankfold.linalg import sign_flips
 from rankfold.memory import trim_heap
-from rankfold.sample_outputs import SampleParts, buffer_bytes, held_bytes
+from rankfold.sample_outputs import SampleParts, stage_bytes
 from rankfold.sources.base import Partition, Source
 from rankfold.sources.readahead import iter_blocks
 
@@ -153,8 +153,7 @@ def output_bytes(inp: RouteInput) -> int:
     """Memory the per-sample stage holds beside a route's state (0 without scores)."""
     if not inp.scores:
         return 0
-    n = inp.source.n_samples
-    return buffer_bytes(n, inp.rank) + (held_bytes(n, inp.rank) if inp.outputs_held else 0)
+    return stage_bytes(inp.source.n_samples, inp.rank, inp.outputs_held)
 
 
 def scratch_folder(inp: RouteInput) -> str:

@@ -13,7 +13,7 @@ import numpy as np
 from rankfold.folds import ColumnScores, RowScores
 from rankfold.memory import block_budget
 from rankfold.routes.common import Decomposition, RouteInput, run_pass
-from rankfold.sample_outputs import RowWriter, buffer_bytes, chunk_rows, held_bytes, residuals
+from rankfold.sample_outputs import RowWriter, chunk_rows, residuals, stage_bytes
 
 NAME = "scores"
 
@@ -78,19 +78,17 @@ def project(inp: RouteInput, loadings, center, scale, sink, passes: list, label:
     if prepare is None:
         def prepare(block, start):
             return block
-    if inp.outputs_held:
-        loadings_bytes = loadings.nbytes + held_bytes(n, k)  # the arrays the sink fills are in memory
-    else:
-        loadings_bytes = loadings.nbytes
+    # The arrays the sink fills (in memory, or the writer's buffers) and every residual.
+    outputs = stage_bytes(n, k, inp.outputs_held) + loadings.nbytes
     if (axis or source.native_axis) == "samples":
-        fixed = buffer_bytes(n, k) + loadings_bytes + source.fixed_read_bytes("samples")
+        fixed = outputs + source.fixed_read_bytes("samples")
         budget = block_budget(inp.memory_limit, fixed, source.min_block_bytes("samples"), "the scores pass")
         # Missing values can only be present under fill-mean: the route (or prepare) refused them otherwise.
         state = RowScores(loadings, center, scale, sink, positions, missing=inp.missing == "fill-mean")
         _, record = run_pass(label, inp, source.partition("samples", budget), state, prepare)
         passes.append(record)
         return
-    fixed = n * (k + 3) * 8 + buffer_bytes(n, k) + loadings_bytes + source.fixed_read_bytes("features")
+    fixed = n * (k + 3) * 8 + outputs + source.fixed_read_bytes("features")
     budget = block_budget(inp.memory_limit, fixed, source.min_block_bytes("features"), "the scores pass")
     state = ColumnScores(loadings, center, scale, n, positions)
     state, record = run_pass(label, inp, source.partition("features", budget), state, prepare)
