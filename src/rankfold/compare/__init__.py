@@ -7,7 +7,8 @@ outside), ``engine`` (:func:`compare_subset`, :func:`compare_results`),
 ``output`` (the report folder, written atomically).
 """
 
-from rankfold.compare.engine import DEFAULT_TARGET_ANGLE, compare_results, compare_subset
+from rankfold.compare.engine import DEFAULT_TARGET_ANGLE, compare_subset
+from rankfold.compare.results import compare_results
 from rankfold.compare.settings import Setting, parse_settings
 from rankfold.compare.subset import draw_subset, parse_fraction
 
