@@ -34,7 +34,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from rankfold.errors import OutputError
-from rankfold.sources.location import is_url, join, local_or_url, parent, url_fs
+from rankfold.sources.location import exists, is_url, join, local_or_url, parent, url_fs
 
 FORMAT_VERSION = 1
 FORMAT_KEY = "rankfold_format"
@@ -259,7 +259,7 @@ class ResultWriter:
         self.group.attrs.update(attrs)
         key, version = self.marker
         self.group.attrs[key] = version  # written last: marks the store complete
-        if _exists(out):
+        if exists(out):
             if self.checked:
                 check_output_path(out, self.overwrite)
             trash = join(parent, f".{name}.replaced-{os.getpid()}")
@@ -302,13 +302,6 @@ def _split(out: str) -> tuple[str, str]:
     if is_url(out):
         return parent(out), out.rstrip("/").rsplit("/", 1)[1]
     return os.path.split(os.path.abspath(out))
-
-
-def _exists(path: str) -> bool:
-    if is_url(path):
-        fs, p = url_fs(path)
-        return fs.exists(p)
-    return os.path.exists(path)
 
 
 def _isdir(path: str) -> bool:
