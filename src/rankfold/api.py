@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import contextlib
 import datetime
 import os
 import platform
@@ -12,6 +11,7 @@ import numpy as np
 
 from rankfold import stopping
 from rankfold.checkpoint import DEFAULT_EVERY, Checkpointer
+from rankfold.cluster import check_cluster_argument, optional_session
 from rankfold.errors import Interrupted, SourceError, UsageError
 from rankfold.memory import default_memory_limit, parse_memory, return_freed_memory_promptly
 from rankfold.result import Result, ResultWriter, check_output_path, open_result
@@ -162,10 +162,7 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
     if isinstance(checkpoint_every, bool) or not isinstance(checkpoint_every, (int, float, np.integer, np.floating)) \
             or not np.isfinite(checkpoint_every) or checkpoint_every < 0:
         raise UsageError(f"checkpoint_every must be a number of seconds, 0 or more; got {checkpoint_every!r}")
-    if cluster is not None:
-        from rankfold.cluster import check_cluster_argument
-
-        check_cluster_argument(cluster)
+    check_cluster_argument(cluster)
     limit = parse_memory(memory_limit) if memory_limit is not None else None
     if out is not None:
         out = os.fspath(out)
@@ -223,7 +220,7 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
         # resumed run replaces what a killed one left (the checkpoint's lock keeps runs apart).
         writer = ResultWriter(out, overwrite, tag="resumable" if ckpt else None) if out is not None else None
         try:
-            with _cluster_session(cluster, src) as session, stopping.stop_on_signals():
+            with optional_session(cluster, src) as session, stopping.stop_on_signals():
                 inp = RouteInput(src, int(rank), bool(standardize), missing, limit, progress, int(oversample),
                                  int(power_iterations), sketch, int(seed), scores=bool(scores),
                                  scratch=writer.scratch_folder() if writer else None, outputs_held=writer is None,
@@ -308,7 +305,7 @@ def _sample_outputs(dec: Decomposition, inp: RouteInput, writer: ResultWriter | 
         arrays = {"scores": writer.create("scores", (n, k), scores_dtype, ("sample", "component"), (chunk, k)),
                   "residual": writer.create("residual", (n,), "float64", ("sample",), (chunk,)),
                   "residual_fraction": writer.create("residual_fraction", (n,), "float64", ("sample",), (chunk,))}
-        every = scores_stage.write(dec, inp, arrays, np.dtype(scores_dtype))
+        every = scores_stage.write(dec, inp, arrays, np.dtype(scores_dtype), group=writer.tmp)
         rule = flag_rule(every, flag_threshold)
         writer.add("flagged", every > rule.cutoff, ("sample",), (chunk,))
     return {}, rule
@@ -324,19 +321,6 @@ def _free_disk(out) -> int | None:
         return shutil.disk_usage(os.path.dirname(os.path.abspath(out))).free
     except OSError:
         return None
-
-
-def _cluster_session(cluster, src: Source):
-    """A checked cluster session for the run, or a null context for serial runs.
-
-    The in-memory route makes no pass (one LAPACK call in this process), but the
-    cluster is still connected and checked, so a bad ``cluster=`` never passes silently.
-    """
-    if cluster is None:
-        return contextlib.nullcontext()
-    from rankfold.cluster import connect
-
-    return connect(cluster, src)
 
 
 def plan_request(src: Source, rank: int, limit: int, **options) -> PlanRequest:

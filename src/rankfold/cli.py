@@ -67,6 +67,7 @@ def _parser() -> argparse.ArgumentParser:
     j.add_argument("--array", metavar="NAME", help="array inside a Zarr group")
     j.add_argument("--overwrite", action="store_true", help="replace an earlier projection at --out")
     j.add_argument("--quiet", "-q", action="store_true", help="print nothing but errors")
+    _cluster_option(j)
 
     s = sub.add_parser("show", help="print a result's components, route and timings")
     s.add_argument("result", metavar="RESULT.zarr")
@@ -199,7 +200,7 @@ def _project(args) -> int:
         warnings.simplefilter("always")
         done = project(args.result, args.source, out=args.out, format=args.format, memory_limit=args.memory_limit,
                        scores_dtype=args.scores_dtype, id_column=args.id_column, array=args.array,
-                       overwrite=args.overwrite)
+                       overwrite=args.overwrite, cluster=args.cluster)
     for w in caught:
         print(f"rankfold: warning: {w.message}", file=sys.stderr)
     if not args.quiet:

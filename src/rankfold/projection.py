@@ -15,6 +15,7 @@ the decomposition was built on, not by the batch itself.
 
 from __future__ import annotations
 
+import dataclasses
 import os
 import time
 import warnings
@@ -22,13 +23,13 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from rankfold.cluster import check_cluster_argument, optional_session
 from rankfold.errors import OutputError, SourceError, UsageError
 from rankfold.memory import default_memory_limit, parse_memory, return_freed_memory_promptly
 from rankfold.result import Result, ResultWriter, _remove, check_parent_folder, open_result
 from rankfold.routes import scores as scores_stage
 from rankfold.routes.common import RouteInput, check_values
-from rankfold.sample_outputs import (DEFAULT_FLAG_THRESHOLD, SCORE_DTYPES, RowWriter, chunk_rows, flag_rule,
-                                     residuals)
+from rankfold.sample_outputs import DEFAULT_FLAG_THRESHOLD, SCORE_DTYPES, ScoreWriter, chunk_rows, flag_rule
 from rankfold.sources import Source, open_source
 
 FORMATS = ("zarr", "parquet")
@@ -65,7 +66,7 @@ class Projection:
 
 def project(result, source, *, out=None, format: str = "zarr", memory_limit=None, overwrite: bool = False,
             scores_dtype: str = "float32", id_column: str | None = None, array: str | None = None,
-            progress=None) -> Projection:
+            progress=None, cluster=None) -> Projection:
     """Scores, residuals and flags of the samples of ``source`` in the components of ``result``.
 
     Parameters
@@ -93,6 +94,11 @@ def project(result, source, *, out=None, format: str = "zarr", memory_limit=None
         Array name inside a Zarr group.
     progress : callable, optional
         Called after every block, as in :func:`rankfold.decompose`.
+    cluster : distributed.Client or str, optional
+        Run the pass on a dask.distributed cluster, as in :func:`rankfold.decompose`:
+        each worker reads its own range of samples and, with ``out``, writes
+        its own chunks of the outputs (``out`` must then be on storage every
+        worker sees).  See docs/cluster.md.
 
     Returns
     -------
@@ -100,12 +106,13 @@ def project(result, source, *, out=None, format: str = "zarr", memory_limit=None
 
     Raises
     ------
-    UsageError, SourceError, DataError, MemoryLimitError, OutputError
+    UsageError, SourceError, DataError, MemoryLimitError, OutputError, ClusterError
     """
     if format not in FORMATS:
         raise UsageError(f"format must be one of {', '.join(FORMATS)}; got {format!r}")
     if scores_dtype not in SCORE_DTYPES:
         raise UsageError(f"scores_dtype must be one of {', '.join(SCORE_DTYPES)}; got {scores_dtype!r}")
+    check_cluster_argument(cluster)
     res = result if isinstance(result, Result) else open_result(os.fspath(result))
     limit = parse_memory(memory_limit) if memory_limit is not None else default_memory_limit()
     if out is not None:
@@ -141,28 +148,28 @@ def project(result, source, *, out=None, format: str = "zarr", memory_limit=None
                           "residual": writer.create("residual", (n,), "float64", ("sample",), (chunk,)),
                           "residual_fraction": writer.create("residual_fraction", (n,), "float64", ("sample",),
                                                              (chunk,))}
-            rows = RowWriter(arrays, chunk)
-            every = np.empty(n)
-            dtype = np.dtype(scores_dtype) if writer else np.float64
-
-            def sink(start, z, sumsq):
-                r, f = residuals(z, sumsq)
-                every[start:start + len(r)] = r
-                rows.write(start, scores=z.astype(dtype, copy=False), residual=r, residual_fraction=f)
-
+            cluster_info = None
+            sink = ScoreWriter(arrays, chunk, np.dtype(scores_dtype) if writer else np.float64,
+                               writer.tmp if writer else None)
             try:
-                scores_stage.project(inp, loadings, center, scale, sink, passes, "projection", prepare=prepare,
-                                     positions=positions)
-                rows.close()
+                with optional_session(cluster, src) as session:
+                    scores_stage.project(dataclasses.replace(inp, cluster=session), loadings, center, scale, sink,
+                                         passes, "projection", prepare=prepare, positions=positions)
+                    sink.close()
+                    if session is not None:
+                        cluster_info = session.summary()
             except BaseException:
-                rows.abort()  # before the partial store is removed
+                sink.abort()  # before the partial store is removed
                 raise
+            every = sink.residual
             flag = _flag(res, every)
             flagged = every > flag["cutoff"]
             ids = src.read_sample_ids()
             attrs = {PROJECTION_KEY: PROJECTION_VERSION, "result": res.path, "source": src.fingerprint(),
                      "n_samples": int(n), "rank": int(k), "residual_flag": flag,
                      "passes": [p.as_dict() for p in passes], "seconds": round(time.perf_counter() - t0, 6)}
+            if cluster_info is not None:
+                attrs["cluster"] = cluster_info
             if writer is None:
                 return Projection(None, arrays["scores"], arrays["residual"], arrays["residual_fraction"], flagged,
                                   ids, attrs)

@@ -34,6 +34,7 @@ roots); the cutoff is stored in residual units.
 
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass
 
 import numpy as np
@@ -188,6 +189,128 @@ def _store(batch, lo: int, hi: int) -> None:
         array[lo:hi] = rows
 
 
+SCORE_ARRAYS = ("scores", "residual", "residual_fraction")
+
+
+class ScoreWriter:
+    """The sink of a scores pass: takes ``(start, z, sumsq)`` in row order, writes the per-sample arrays.
+
+    Parameters
+    ----------
+    arrays : dict
+        ``scores`` (n, k), ``residual`` and ``residual_fraction`` (n,): Zarr
+        arrays chunked by ``chunk`` rows, or numpy arrays.
+    chunk : int
+        Rows per chunk of the arrays.
+    dtype : numpy dtype
+        Of the stored scores.
+    group : str, optional
+        Path or URL of the Zarr group holding ``arrays`` when other processes
+        can open it: cluster workers then write row ranges of their own
+        (:meth:`worker_plan`).
+    start, stop : int, optional
+        The rows this writer covers: ``start`` a chunk boundary, ``stop`` a
+        chunk boundary or the arrays' end (default: all of them).
+
+    Attributes
+    ----------
+    residual : ndarray, shape (stop - start,)
+        Every squared residual written, kept for the flag rule.
+    """
+
+    def __init__(self, arrays: dict, chunk: int, dtype, group: str | None = None, start: int = 0,
+                 stop: int | None = None):
+        self.start = start
+        self.stop = arrays["residual"].shape[0] if stop is None else stop
+        self.chunk, self.dtype, self.group = chunk, np.dtype(dtype), group
+        self.rows = RowWriter(arrays, chunk, start)
+        self.residual = np.empty(self.stop - start)
+
+    def __call__(self, start: int, z: np.ndarray, sumsq: np.ndarray) -> None:
+        r, f = residuals(z, sumsq)
+        self.residual[start - self.start:start - self.start + len(r)] = r
+        self.rows.write(start, scores=z.astype(self.dtype, copy=False), residual=r, residual_fraction=f)
+
+    def close(self) -> None:
+        self.rows.close()
+
+    def abort(self) -> None:
+        self.rows.abort()
+
+    def result(self) -> np.ndarray:
+        """What a worker sends back: the residuals of its rows (the flag rule needs all of them)."""
+        return self.residual
+
+    def worker_plan(self) -> "StoredRows | None":
+        """A recipe other processes use to write row ranges of the same arrays (None when in memory)."""
+        return None if self.group is None else StoredRows(_absolute(self.group), self.chunk, "scores",
+                                                           self.dtype.str)
+
+    def receive(self, start: int, residual: np.ndarray) -> None:
+        """Take the residuals of rows that another process wrote."""
+        self.residual[start - self.start:start - self.start + len(residual)] = residual
+
+
+def _absolute(path: str) -> str:
+    """A path as another process must see it: absolute when local (workers need not share our folder)."""
+    from rankfold.sources.location import is_url
+
+    return path if is_url(path) else os.path.abspath(path)
+
+
+class _TallRows:
+    """The capture sink of a worker filling rows of a stored :class:`TallProduct`."""
+
+    def __init__(self, arrays: dict, chunk: int, start: int):
+        self.rows = RowWriter(arrays, chunk, start)
+
+    def __call__(self, start: int, y: np.ndarray, sumsq: np.ndarray) -> None:
+        self.rows.write(start, y=y, sumsq=sumsq)
+
+    def close(self) -> None:
+        self.rows.close()
+
+    def abort(self) -> None:
+        self.rows.abort()
+
+    def result(self) -> None:
+        return None  # the rows are in the scratch store
+
+
+@dataclass(frozen=True)
+class StoredRows:
+    """How a worker process writes a row range of stored per-sample arrays (picklable).
+
+    ``kind`` is ``"scores"`` (a :class:`ScoreWriter` over ``SCORE_ARRAYS``,
+    scores stored as ``dtype``) or ``"tall"`` (the ``y`` and ``sumsq`` arrays
+    of a :class:`TallProduct`).  Writers of disjoint ranges that start and end
+    on chunk boundaries never share a chunk.
+    """
+
+    group: str
+    chunk: int
+    kind: str
+    dtype: str = "<f8"
+
+    @property
+    def names(self) -> tuple[str, ...]:
+        return SCORE_ARRAYS if self.kind == "scores" else ("y", "sumsq")
+
+    def open(self) -> dict:
+        import zarr
+
+        group = zarr.open_group(self.group, mode="r+")
+        return {name: group[name] for name in self.names}
+
+    def start(self, lo: int, hi: int):
+        """A sink for rows ``lo`` to ``hi`` (called with blocks in order), with close/abort/result."""
+        if lo % self.chunk:
+            raise ValueError(f"a row range must start on a chunk boundary ({self.chunk} rows); got {lo}")
+        if self.kind == "scores":
+            return ScoreWriter(self.open(), self.chunk, self.dtype, self.group, lo, hi)
+        return _TallRows(self.open(), self.chunk, lo)
+
+
 def residuals(scores: np.ndarray, sumsq: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Squared reconstruction residuals and their fraction of each sample's squared norm.
 
@@ -261,8 +384,10 @@ class TallProduct:
     chunk to form scores once the Ritz coefficients are known.
     """
 
-    def __init__(self, n: int, width: int, scratch: str | None, chunk_bytes: int = CHUNK_BYTES):
+    def __init__(self, n: int, width: int, scratch: str | None, chunk_bytes: int = CHUNK_BYTES,
+                 shared: bool = False):
         self.n, self.width, self.scratch = n, width, scratch
+        self.shared = shared and scratch is not None  # other processes see the scratch folder
         self.chunk = chunk_rows(n, width + 1, chunk_bytes=chunk_bytes)
         if scratch is None:
             self.y = np.empty((n, width))
@@ -283,8 +408,16 @@ class TallProduct:
     def bytes_needed(n: int, width: int) -> int:
         return n * (width + 1) * 8
 
-    def capture(self, start: int, y: np.ndarray, sumsq: np.ndarray) -> None:
+    def __call__(self, start: int, y: np.ndarray, sumsq: np.ndarray) -> None:
+        """The capture sink of the last pass: rows ``start`` onwards of ``Y`` and their squared norms."""
         self.writer.write(start, y=y, sumsq=sumsq)
+
+    def worker_plan(self) -> StoredRows | None:
+        """A recipe for cluster workers to fill row ranges themselves (scratch beside the output only)."""
+        return StoredRows(_absolute(self.scratch), self.chunk, "tall") if self.shared else None
+
+    def receive(self, start: int, value) -> None:
+        """Rows written by another process: nothing comes back (they are in the scratch store)."""
 
     def chunks(self):
         """Yield ``(start, y, sumsq)`` for consecutive row ranges."""

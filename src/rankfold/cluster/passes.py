@@ -41,9 +41,22 @@ def _extras(state) -> dict:
     return {k: v for k, v in vars(state).items() if k not in type(state)._fields and k not in MESSAGE_ONLY}
 
 
+def row_hook(state) -> tuple[str, object] | None:
+    """The attribute of ``state`` that receives rows while it folds, and its value (None if none)."""
+    for attr, value in _extras(state).items():
+        if callable(value):
+            return attr, value
+    return None
+
+
 def runs_on_client(state) -> bool:
-    """Whether ``state`` calls back into this process while folding, so its pass cannot be shipped."""
-    return any(callable(v) for v in _extras(state).values())
+    """Whether ``state``'s pass must run in this process: it hands rows to a sink that only lives here.
+
+    A sink with a ``worker_plan`` (a store other processes can open) is
+    rebuilt on each worker for a range of rows instead (:mod:`rankfold.cluster.rows`).
+    """
+    hook = row_hook(state)
+    return hook is not None and getattr(hook[1], "worker_plan", lambda: None)() is None
 
 
 def cluster_pass(name: str, inp, partition: Partition, state, prepare) -> tuple[object, PassRecord]:
@@ -51,18 +64,20 @@ def cluster_pass(name: str, inp, partition: Partition, state, prepare) -> tuple[
 
     ``state`` is the empty template; its class, its bytes, its attributes that
     are not serialized (lookup tables, widths) and ``prepare`` are shipped with
-    each task.  A state that calls back into this process while folding runs
-    here instead, serially.  Returns the merged state and the pass record.
+    each task.  A state that hands rows to a sink (scores written while they
+    are computed, the randomized route's captured thin product) has each task
+    write a range of whole chunks itself when the sink's store is one the
+    workers can open; otherwise the pass runs here, serially.  Returns the
+    merged state and the pass record.
     """
-    extras = _extras(state)
-    if any(callable(v) for v in extras.values()):
-        # The state hands rows to a callback in this process as it folds (scores written
-        # while they are computed, the randomized route's captured thin product): such a
-        # pass runs here, serially, on the same blocks.
+    if runs_on_client(state):
         from rankfold.routes.common import run_pass
 
         return run_pass(name, dataclasses.replace(inp, cluster=None), partition, state, prepare)
     from distributed import as_completed
+
+    from rankfold.cluster import rows as row_tasks
+    from rankfold.cluster.worker import extra_of
 
     session = inp.cluster
     client = session.client
@@ -70,16 +85,28 @@ def cluster_pass(name: str, inp, partition: Partition, state, prepare) -> tuple[
     spec = source.spec()
     t0 = time.perf_counter()
     cls = type(state)
+    hook = row_hook(state)
+    extras = {k: v for k, v in _extras(state).items() if hook is None or k != hook[0]}
     template = pack_state(state)
     names = {"feature_names": getattr(state, "feature_names", None) is not None,
              "source_path": getattr(state, "source_path", None), "extras": extras}
     shipped = len(template) + len(cloudpickle.dumps(prepare)) + len(cloudpickle.dumps(spec))
-    ranges = block_ranges(len(partition), TASKS_PER_THREAD * session.threads)
     key = f"rankfold-{name.replace(' ', '-')}-{uuid.uuid4().hex[:8]}"
-    folds = []
-    for i, (a, b) in enumerate(ranges):
-        folds.append(client.submit(fold_range, spec, partition.axis, partition.bounds[a:b], cls, template,
-                                   prepare, session.blas_limits, names, key=f"{key}-fold-{i}", pure=False))
+    n_tasks = TASKS_PER_THREAD * session.threads
+    if hook is None:
+        pieces = [{"bounds": partition.bounds[a:b], "blocks": b - a, "rows": None}
+                  for a, b in block_ranges(len(partition), n_tasks)]
+    else:
+        # Each task writes rows lo:hi of the sink's arrays, whole chunks only.
+        plan = hook[1].worker_plan()
+        session.check_output(plan)
+        pieces = row_tasks.row_pieces(partition, plan.chunk, n_tasks)
+        for piece in pieces:
+            piece["rows"] = {"hook": hook[0], "plan": plan, "lo": piece["lo"], "hi": piece["hi"],
+                             "stop": row_tasks.stop_name(key)}
+    folds = [client.submit(fold_range, spec, partition.axis, piece["bounds"], cls, template, prepare,
+                           session.blas_limits, names, piece["rows"], key=f"{key}-fold-{i}", pure=False)
+             for i, piece in enumerate(pieces)]
     level, depth, merges = folds, 0, []
     while len(level) > 1:
         depth += 1
@@ -101,14 +128,21 @@ def cluster_pass(name: str, inp, partition: Partition, state, prepare) -> tuple[
             for future in as_completed(folds):
                 if future.status == "error":
                     future.result()  # raises the worker's exception here
-                a, b = ranges[position[future.key]]
-                done_blocks += b - a
-                read += sum(hi - lo for lo, hi in partition.bounds[a:b]) * unit_bytes
+                piece = pieces[position[future.key]]
+                done_blocks += piece["blocks"]
+                read += sum(hi - lo for lo, hi in piece["bounds"]) * unit_bytes
                 if inp.progress is not None:
                     inp.progress({"pass": name, "block": done_blocks, "blocks": len(partition), "bytes": read,
                                   "seconds": time.perf_counter() - t0})
-        payload, blocks, read = root.result()
+        payload, _blocks, read = root.result()[:3]
+        if hook is not None:
+            # The rows went to the store; what comes back is small (a scores pass: each row's residual).
+            for piece, value in zip(pieces, client.gather([client.submit(extra_of, f, pure=False) for f in folds])):
+                hook[1].receive(piece["lo"], value)
+                session.bytes_moved += getattr(value, "nbytes", 0)
     except Exception as exc:
+        if hook is not None:
+            row_tasks.settle(client, folds, key)  # nobody may still write when the store is removed
         # Stop what is still queued; finished futures are released with their references
         # (cancelling a finished future that a merge still needs upsets the scheduler).
         pending = [f for f in [*folds, *merges] if not f.done()]
@@ -119,7 +153,7 @@ def cluster_pass(name: str, inp, partition: Partition, state, prepare) -> tuple[
     # result once to its merge or to us (states have the same size whatever their range).
     session.bytes_moved += len(folds) * shipped + (len(folds) + len(merges)) * len(payload)
     merged = cls.from_bytes(payload)
-    for attr in (*MESSAGE_ONLY, *extras):
+    for attr in (*MESSAGE_ONLY, *_extras(state)):
         if getattr(state, attr, None) is not None:
             setattr(merged, attr, getattr(state, attr))
     record = PassRecord(name, partition.axis, len(partition), partition.largest, read, time.perf_counter() - t0)
@@ -138,8 +172,11 @@ def _reraise(exc: Exception, name: str):
         raise ClusterError(f"the {name} pass failed: workers died repeatedly while running one of its tasks "
                            f"({exc}); check the workers' memory against the planner's peak estimate "
                            "(`rankfold plan`)") from None
-    if isinstance(exc, (OSError, TimeoutError)) or type(exc).__name__ in ("CommClosedError", "CancelledError",
-                                                                          "FutureCancelledError"):
+    if isinstance(exc, TimeoutError) or type(exc).__name__ in ("CommClosedError", "CancelledError",
+                                                               "FutureCancelledError"):
         raise ClusterError(f"the {name} pass lost its cluster ({type(exc).__name__}: {exc}); "
                            "no result was written") from None
+    if isinstance(exc, OSError):  # raised inside a task: the worker's storage (a full disk, a lost mount)
+        raise ClusterError(f"the {name} pass failed on a worker ({type(exc).__name__}: {exc}); check the "
+                           "workers' storage for the data and the output; no result was written") from None
     raise exc

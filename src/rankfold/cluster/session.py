@@ -76,6 +76,7 @@ class ClusterSession:
         self.blas_limits: dict = {}
         self.bytes_moved = 0
         self.tasks = 0
+        self.outputs_checked: set[str] = set()
 
     def set_blas_limits(self) -> None:
         """Each host's cores divided among the worker threads it runs (at least 1)."""
@@ -125,6 +126,23 @@ class ClusterSession:
                 f"worker {addr}{more} cannot read {spec.path}: {why}. Workers open the data themselves: put it "
                 "on storage every worker sees at the same path (a shared file system or an fsspec URL "
                 "such as s3://bucket/table.zarr)")
+
+    def check_output(self, plan) -> None:
+        """Every worker must open the store it will write rows into (a :class:`~rankfold.sample_outputs.StoredRows`)."""
+        from rankfold.cluster.worker import probe_group
+
+        if plan.group in self.outputs_checked:
+            return
+        answers = self.client.run(probe_group, plan.group, plan.names)
+        bad = {addr: why for addr, why in sorted(answers.items()) if why}
+        if bad:
+            addr, why = next(iter(bad.items()))
+            more = f" (and {len(bad) - 1} more worker(s))" if len(bad) > 1 else ""
+            raise ClusterError(
+                f"worker {addr}{more} cannot write to {plan.group}: {why}. Workers write the per-sample outputs "
+                "themselves: put the output on storage every worker sees at the same path (a shared file "
+                "system or an fsspec URL such as s3://bucket/pca.zarr)")
+        self.outputs_checked.add(plan.group)
 
     def summary(self) -> dict:
         """What the store records about the cluster run."""
@@ -181,6 +199,13 @@ def connect(cluster, source=None, timeout: float | None = None):
         if source is not None:
             session.check_source(source)
         yield session
+
+
+def optional_session(cluster, source=None):
+    """:func:`connect` when ``cluster`` is given; a context yielding None (a serial run) otherwise."""
+    if cluster is None:
+        return contextlib.nullcontext()
+    return connect(cluster, source)
 
 
 def _client(cluster, timeout: float, stack: contextlib.ExitStack):

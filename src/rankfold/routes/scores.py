@@ -13,7 +13,7 @@ import numpy as np
 from rankfold.folds import ColumnScores, RowScores
 from rankfold.memory import block_budget
 from rankfold.routes.common import Decomposition, RouteInput, run_pass
-from rankfold.sample_outputs import RowWriter, chunk_rows, residuals, stage_bytes
+from rankfold.sample_outputs import ScoreWriter, chunk_rows, stage_bytes
 
 NAME = "scores"
 
@@ -25,42 +25,47 @@ def needs_pass(route: str, native_axis: str, sketch: str) -> bool:
     return route == "sketch" and sketch == "one-pass" and native_axis == "samples"
 
 
-def write(dec: Decomposition, inp: RouteInput, arrays: dict, dtype) -> np.ndarray:
+def write(dec: Decomposition, inp: RouteInput, arrays: dict, dtype, group: str | None = None) -> np.ndarray:
     """Write ``scores``, ``residual`` and ``residual_fraction`` into ``arrays``; return every residual.
 
     ``arrays`` maps those names to Zarr (or numpy) arrays of length n, chunked
-    along samples by :func:`rankfold.sample_outputs.chunk_rows`.  The residuals
-    (n,) are returned for the outlier rule, which needs all of them.
+    along samples by :func:`rankfold.sample_outputs.chunk_rows`.  ``group``
+    is the path or URL of the Zarr group holding them: on a cluster, the
+    workers then write the rows they compute (:mod:`rankfold.cluster.rows`).
+    The residuals (n,) are returned for the outlier rule, which needs all of them.
     """
     n, k = dec.n_samples, dec.loadings.shape[1]
-    writer = RowWriter(arrays, chunk_rows(n, k))
-    every = np.empty(n)
-
-    def sink(start: int, z: np.ndarray, sumsq: np.ndarray) -> None:
-        r, f = residuals(z, sumsq)
-        every[start:start + len(r)] = r
-        writer.write(start, scores=z.astype(dtype, copy=False), residual=r, residual_fraction=f)
-
+    sink = ScoreWriter(arrays, chunk_rows(n, k), dtype, group)
     parts = dec.parts
     try:
         if parts.scores is not None:
+            # Scores that came out of the route are in this process already: written from here.
             step = chunk_rows(n, k)
             for a in range(0, n, step):
                 sink(a, parts.scores[a:a + step], parts.sumsq[a:a + step])
         elif parts.tall is not None:
             try:
-                for a, y, sumsq in parts.tall.chunks():
-                    sink(a, y @ parts.coefficients, sumsq)
+                if not _tall_on_cluster(inp, parts, sink):
+                    for a, y, sumsq in parts.tall.chunks():
+                        sink(a, y @ parts.coefficients, sumsq)
             finally:
                 parts.tall.remove()
         else:
             # Along samples, like the route before it: whole samples need no n x k sum in memory.
             project(inp, dec.loadings, dec.center, dec.scale, sink, dec.passes, NAME, axis="samples")
-        writer.close()
+        sink.close()
     except BaseException:
-        writer.abort()  # before the caller removes the store the writes go to
+        sink.abort()  # before the caller removes the store the writes go to
         raise
-    return every
+    return sink.residual
+
+
+def _tall_on_cluster(inp: RouteInput, parts, sink: ScoreWriter) -> bool:
+    if inp.cluster is None:
+        return False
+    from rankfold.cluster.rows import scores_from_tall
+
+    return scores_from_tall(inp.cluster, parts.tall, parts.coefficients, sink)
 
 
 def project(inp: RouteInput, loadings, center, scale, sink, passes: list, label: str,

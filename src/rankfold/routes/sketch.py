@@ -96,7 +96,10 @@ def run(inp: RouteInput) -> Decomposition:
     tall_in_memory = None
     if captures_scores(inp):
         width = basis_width(inp.rank, inp.oversample, inp.power_iterations, inp.sketch)
-        tall_in_memory = tall_fits_in_memory(n, width, inp.memory_limit)
+        # On a cluster writing a result store, the workers fill the tall product in a scratch
+        # folder beside the output (they cannot reach this process's memory).
+        tall_in_memory = (tall_fits_in_memory(n, width, inp.memory_limit)
+                          and (inp.cluster is None or inp.scratch is None))
         fixed += (TallProduct.bytes_needed(n, width) if tall_in_memory
                   else writer_bytes(n, width + 1, scratch_chunk_bytes(inp.memory_limit)))
     budget = block_budget(inp.memory_limit, fixed, source.min_block_bytes(axis), "the randomized route")
@@ -220,9 +223,10 @@ def _run_rows(inp: RouteInput, partition, omega, tests, tall_in_memory) -> Decom
             state = CovarianceProduct(basis, center, scale, missing=fill)
             if last and tall_in_memory is not None:
                 width = basis.shape[1] - tests.shape[1]
+                # A scratch folder beside the output is one cluster workers can fill themselves.
                 parts.tall = TallProduct(n, width, None if tall_in_memory else scratch_folder(inp),
-                                         scratch_chunk_bytes(inp.memory_limit))
-                state = CovarianceProduct(basis, center, scale, parts.tall.capture, width, missing=fill)
+                                         scratch_chunk_bytes(inp.memory_limit), shared=inp.scratch is not None)
+                state = CovarianceProduct(basis, center, scale, parts.tall, width, missing=fill)
             try:
                 state, rec = run_pass(label, inp, partition, state, check)
             except BaseException:
