@@ -66,9 +66,21 @@ def child_main(args) -> None:
                                host="127.0.0.1", dashboard_address=None, silence_logs=logging.ERROR)
         client = Client(cluster, set_as_default=False)
         startup = time.perf_counter() - t0
+    scratch = None
+    if options.get("scores"):
+        # Scores go to a result store, which the workers write chunk by chunk themselves
+        # (held in memory instead, they would all be assembled in this process).
+        import tempfile
+
+        scratch = tempfile.mkdtemp(prefix="bench-cluster-", dir=os.path.dirname(os.path.abspath(args.data)))
+        options["out"] = os.path.join(scratch, "result.zarr")
     t0 = time.perf_counter()
     result = rankfold.decompose(args.data, args.rank, cluster=client, **options)
     seconds = time.perf_counter() - t0
+    if scratch is not None:
+        import shutil
+
+        shutil.rmtree(scratch, ignore_errors=True)
     out = {"setup": args.setup, "seconds": seconds, "startup": startup,
            "bytes_read": sum(p["bytes_read"] for p in result.attrs["passes"]),
            "passes": len(result.attrs["passes"]), "route": result.attrs["route"],
@@ -145,7 +157,8 @@ def main(argv=None) -> None:
     p.add_argument("--memory-limit", default="1GB", help="rankfold's ceiling, per process (default 1GB)")
     p.add_argument("--repeat", type=int, default=3, help="runs per setup; the median is reported (default 3)")
     p.add_argument("--with-scores", action="store_true",
-                   help="write scores too (their passes run on the client, serially; default: without)")
+                   help="write scores too, to a result store beside the data (on a cluster each worker "
+                        "writes its own chunks; default: without)")
     p.add_argument("--child", action="store_true", help=argparse.SUPPRESS)
     p.add_argument("--setup", help=argparse.SUPPRESS)
     p.add_argument("--data", help=argparse.SUPPRESS)

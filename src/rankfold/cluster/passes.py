@@ -139,7 +139,8 @@ def cluster_pass(name: str, inp, partition: Partition, state, prepare) -> tuple[
             # The rows went to the store; what comes back is small (a scores pass: each row's residual).
             for piece, value in zip(pieces, client.gather([client.submit(extra_of, f, pure=False) for f in folds])):
                 hook[1].receive(piece["lo"], value)
-                session.bytes_moved += getattr(value, "nbytes", 0)
+                # Twice: inside the fold's result on its way to a merge, and to us.
+                session.bytes_moved += 2 * getattr(value, "nbytes", 0)
     except Exception as exc:
         if hook is not None:
             row_tasks.settle(client, folds, key)  # nobody may still write when the store is removed

@@ -9,8 +9,6 @@ from __future__ import annotations
 
 import os
 
-import numpy as np
-
 from rankfold.errors import UsageError
 from rankfold.memory import format_bytes
 from rankfold.reporting import figures

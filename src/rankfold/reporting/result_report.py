@@ -187,7 +187,7 @@ def _scatter_section(result, attrs, files, numbers, label_column, labels, max_po
     numbers["scatter"] = {"n_samples": n, "n_points": int(rows.size), "sampled": bool(rows.size < n),
                           "seed": seed, "rows": rows.tolist(), "x": _floats(xy[:, 0]), "y": _floats(xy[:, 1]),
                           "labels": None if text is None else text.tolist(), "label_source": what}
-    paragraphs = [f"Each dot is a sample placed by its scores on components 1 and 2."]
+    paragraphs = ["Each dot is a sample placed by its scores on components 1 and 2."]
     if rows.size < n:
         paragraphs.append(f"{rows.size:,} of the {n:,} samples are drawn, chosen at random with seed {seed} "
                           "(the same seed draws the same samples).")

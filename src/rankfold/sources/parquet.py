@@ -90,8 +90,6 @@ class ParquetSource(Source):
 
     def __init__(self, path: str, *, columns=None, exclude=None, id_column=None,
                  missing_code: float | None = None):
-        import pyarrow.parquet as pq
-
         self.path = path
         self.missing_code = missing_code
         self.files = _list_files(path)
@@ -238,8 +236,6 @@ class ParquetSource(Source):
     def _group_sizes(self) -> tuple[int, int]:
         """Largest compressed and largest decoded size of a row group's selected columns."""
         if self._largest_group_bytes is None:
-            import pyarrow.parquet as pq
-
             wanted = set(self.feature_names)
             packed = decoded = 0
             for f in self.files:
