@@ -185,8 +185,12 @@ def test_a_run_stopped_in_any_pass_resumes_to_the_same_bits(name, options, refer
             # A pass that sends rows outside its state (the scores pass, the randomized route's
             # captured product) is read again whole: the checkpoint keeps the passes before it.
             assert saved == names[:len(saved)] and len(saved) < p
-    messages = []
-    res = rankfold.decompose(path, 3, out=out, checkpoint_every=0, on_resume=messages.append, **kw)
+    messages, events = [], []
+    res = rankfold.decompose(path, 3, out=out, checkpoint_every=0, on_resume=messages.append,
+                             progress=events.append, **kw)
+    # Restored passes report nothing; the live ones are numbered by the route's own count
+    # (what the progress bar shows as "pass i of n").
+    assert [e["pass_index"] for e in events] == [names.index(e["pass"]) + 1 for e in events]
     last = references[name].attrs["passes"][-1]["name"]
     if last in saved:
         assert messages == [f"resuming from the checkpoint in {checkpoint_folder(out)}: pass {n_passes} of "

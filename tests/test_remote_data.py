@@ -8,6 +8,7 @@ FSSpecHandler, without a network.  No object-store emulator is used here.
 
 from __future__ import annotations
 
+import os
 import uuid
 
 import numpy as np
@@ -126,3 +127,28 @@ def test_missing_url_and_npy_url_are_source_errors(memory_root, write_npy, make_
     npy = write_npy(make_planted(50, 4))
     with pytest.raises(SourceError, match="copy it locally, or store the table as Zarr or Parquet"):
         rankfold.decompose("file://" + npy, 2)
+
+
+def test_checkpoint_of_a_url_output_lives_in_the_local_cache(make_planted, write_zarr, memory_root, tmp_path,
+                                                           monkeypatch):
+    """Object stores (and memory://) have no lock files or atomic renames: the checkpoint of a
+    URL output is kept on local disk under $RANKFOLD_CACHE_DIR/checkpoints, never in a folder
+    named after the URL's scheme in the working directory."""
+    from rankfold.checkpoint import checkpoint_folder
+
+    monkeypatch.setenv("RANKFOLD_CACHE_DIR", str(tmp_path / "cache"))
+    monkeypatch.chdir(tmp_path)
+    path = write_zarr(make_planted(300, 10, seed=2), chunks=(30, 10))
+    out = f"memory://{memory_root}/result.zarr"
+    folder = checkpoint_folder(out)
+    assert folder.startswith(str(tmp_path / "cache" / "checkpoints")) and "result.zarr" in folder
+    assert checkpoint_folder(f"memory://{memory_root}/other/result.zarr") != folder  # named after the whole URL
+    seen = []
+
+    def progress(event):
+        seen.append(os.path.isfile(os.path.join(folder, "manifest.json")))
+
+    rankfold.decompose(path, 3, route="features", out=out, checkpoint_every=0, progress=progress)
+    assert all(seen) and seen  # in use during the run
+    assert not os.path.exists(folder)  # removed with the result complete
+    assert not os.path.exists(tmp_path / "memory:")  # nothing named after the scheme

@@ -49,8 +49,22 @@ DEFAULT_EVERY = 300.0  # seconds: a lost interval costs at most five minutes of 
 
 
 def checkpoint_folder(out: str) -> str:
-    """The checkpoint folder of the result store ``out``: ``.NAME.checkpoint`` beside it."""
-    parent, name = os.path.split(os.path.abspath(os.fspath(out)))
+    """The checkpoint folder of the result store ``out``: ``.NAME.checkpoint`` beside it.
+
+    For an output given as a URL other than ``file://`` (an object store,
+    ``memory://``) the folder is on this machine's disk instead, under
+    ``$RANKFOLD_CACHE_DIR/checkpoints`` and named after the URL: checkpoints
+    rely on a lock file, fsync and atomic renames, which object stores lack.
+    """
+    from rankfold.machine import cache_folder
+    from rankfold.sources.location import is_url, local_or_url
+
+    out = local_or_url(os.fspath(out))
+    if is_url(out):
+        name = out.rstrip("/").rsplit("/", 1)[-1]
+        digest = hashlib.sha256(out.encode()).hexdigest()[:16]
+        return os.path.join(cache_folder(), "checkpoints", f"{name}-{digest}")
+    parent, name = os.path.split(os.path.abspath(out))
     return os.path.join(parent, f".{name}.checkpoint")
 
 
@@ -167,6 +181,11 @@ class Checkpointer:
                         f"{current['blocks_done'] + 1:,} of {current['blocks']:,}")
 
     # -- passes ---------------------------------------------------------------------------------
+
+    @property
+    def ordinal(self) -> int:
+        """Number of the pass begun last, counting from 1 (passes restored whole included)."""
+        return self._ordinal
 
     def begin_pass(self, name: str, partition, resumable: bool = True) -> "PassCursor | None":
         """The next pass of the route: its saved entry when the checkpoint has one.

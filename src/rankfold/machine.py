@@ -43,10 +43,14 @@ class MachineSpeed:
     measured: str = "given"
 
 
+def cache_folder() -> str:
+    """rankfold's folder for what it keeps on this machine: ``$RANKFOLD_CACHE_DIR`` or ``~/.cache/rankfold``."""
+    return os.environ.get("RANKFOLD_CACHE_DIR") or os.path.join(os.path.expanduser("~"), ".cache", "rankfold")
+
+
 def cache_path() -> str:
     """Where the probe's result is kept."""
-    folder = os.environ.get("RANKFOLD_CACHE_DIR") or os.path.join(os.path.expanduser("~"), ".cache", "rankfold")
-    return os.path.join(folder, f"machine-{platform.node() or 'host'}-{os.cpu_count() or 1}cores.json")
+    return os.path.join(cache_folder(), f"machine-{platform.node() or 'host'}-{os.cpu_count() or 1}cores.json")
 
 
 def machine_speed(probe: bool = True) -> MachineSpeed:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import os
 import time
 from collections.abc import Callable
@@ -111,6 +112,10 @@ def run_pass(name: str, inp: RouteInput, partition: Partition, state,
     first, read, before = 0, 0, 0.0
     if cursor is not None and cursor.complete:
         return cursor.restore(state), PassRecord(**cursor.record)
+    if inp.checkpoint is not None and inp.progress is not None:
+        # A resumed run skips the passes it restores: number the events by the route's
+        # own count, so that progress shows "pass 3 of 4", not "pass 1".
+        inp = dataclasses.replace(inp, progress=_numbered(inp.progress, inp.checkpoint.ordinal))
     if inp.cluster is not None:
         from rankfold.cluster.passes import cluster_pass, runs_on_client
 
@@ -147,6 +152,13 @@ def run_pass(name: str, inp: RouteInput, partition: Partition, state,
     if stopping.requested():  # the pass is saved whole; stop before the next one starts
         raise Interrupted(_stopped_message(stopping.requested(), inp, name, cursor))
     return state, record
+
+
+def _numbered(progress: ProgressCallback, index: int) -> ProgressCallback:
+    def tell(event: dict) -> None:
+        progress({**event, "pass_index": index})
+
+    return tell
 
 
 def output_bytes(inp: RouteInput) -> int:
