@@ -193,6 +193,26 @@ def test_workers_that_cannot_see_the_data_are_named(client, planted, tmp_path):
     _nothing_left(tmp_path, [])
 
 
+def test_damaged_chunk_found_on_a_worker_is_the_serial_error(client, planted, write_zarr, tmp_path):
+    """An error our reader raises on a worker reaches the caller as the same typed error
+    (here a SourceError naming the chunk, exit code 3) and leaves no report folder."""
+    from rankfold.errors import SourceError
+
+    path = write_zarr(planted, chunks=(30, 24))
+    chunk = os.path.join(path, "c", "4", "0")
+    raw = bytearray(open(chunk, "rb").read())
+    raw[4:len(raw) - 4] = b"\x5a" * (len(raw) - 8)
+    open(chunk, "wb").write(bytes(raw))
+    kw = dict(subset=1.0, settings="krylov:q=1")  # every unit is read
+    with pytest.raises(SourceError) as serial:
+        rankfold.compare_subset(path, 2, out=str(tmp_path / "serial"), **kw)
+    with pytest.raises(SourceError) as clustered:
+        rankfold.compare_subset(path, 2, cluster=client, out=str(tmp_path / "r"), **kw)
+    assert "chunk c/4/0" in str(clustered.value) and clustered.value.exit_code == 3
+    assert str(clustered.value) == str(serial.value)
+    _nothing_left(tmp_path, [os.path.basename(path)])
+
+
 def test_two_stored_results_refuse_a_cluster(planted, write_parquet, tmp_path):
     path = write_parquet(planted)
     a, b = (rankfold.decompose(path, 2, route="sketch", seed=s, out=str(tmp_path / f"s{s}.zarr")) for s in (1, 2))

@@ -103,6 +103,8 @@ def fill_from_features(session, source, draw, data: np.ndarray, blocks: list, me
 
     def place(i, columns):
         f0, f1 = places[i]
+        if columns.shape != (data.shape[0], f1 - f0):  # pragma: no cover - guards the bookkeeping
+            raise ValueError(f"group {i} returned {columns.shape} columns, expected {(data.shape[0], f1 - f0)}")
         data[:, f0:f1] = columns
         return 0
 
