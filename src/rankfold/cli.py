@@ -90,6 +90,7 @@ def _parser() -> argparse.ArgumentParser:
                    help="largest angle to the exact components a setting may have (default 5 degrees)")
     c.add_argument("--seed", type=int, help="seed of the subset and of the settings (default 0)")
     _source_options(c)
+    _cluster_option(c)
 
     r = sub.add_parser("report", help="write a self-contained HTML report of a result (figures, numbers as JSON)")
     r.add_argument("result", metavar="RESULT.zarr")
@@ -248,7 +249,7 @@ def _compare(args) -> int:
         subset=args.subset, feature_subset=args.feature_subset, settings=args.settings, seed=args.seed,
         memory_limit=args.memory_limit, standardize=args.standardize, missing=args.missing,
         samples_as=args.samples_as, columns=args.columns, exclude=args.exclude,
-        missing_code=args.missing_code, array=args.array)
+        missing_code=args.missing_code, array=args.array, cluster=args.cluster)
     print("\n".join(comparison_lines(comparison)))
     page = report_page(args.out)
     print(f"report: {page or os.path.join(args.out, 'comparison.json')}")

@@ -39,7 +39,7 @@ DEFAULT_TARGET_ANGLE = 5.0
 def compare_subset(source, rank: int, *, subset=0.05, feature_subset=None, settings=None,
                    target_angle: float = DEFAULT_TARGET_ANGLE, seed: int = 0, memory_limit=None,
                    out=None, standardize: bool = False, missing: str = "refuse", samples_as: str = "rows",
-                   columns=None, exclude=None, missing_code=None, array=None) -> dict:
+                   columns=None, exclude=None, missing_code=None, array=None, cluster=None) -> dict:
     """Exact against randomized principal components on a random subset of a table.
 
     Draws a reproducible subset (see :mod:`rankfold.compare.subset`), runs the
@@ -73,6 +73,14 @@ def compare_subset(source, rank: int, *, subset=0.05, feature_subset=None, setti
         ``figures/*.png`` and ``comparison.json`` (:mod:`rankfold.reporting`).
     standardize, missing, samples_as, columns, exclude, missing_code, array
         As in :func:`rankfold.decompose`.
+    cluster : distributed.Client or str, optional
+        Read the subset on a dask.distributed cluster: a client, a scheduler
+        address (``tcp://host:8786``) or ``"local:N"``.  Workers read the
+        chosen parts of the table and send back only the drawn rows; the
+        subset is the serial one bit for bit.  The exact run and the settings
+        still run in this process, one after the other, so that their
+        timings compare.  The session's summary is stored under
+        ``"cluster"``.  See docs/cluster.md.
 
     Returns
     -------
@@ -86,6 +94,9 @@ def compare_subset(source, rank: int, *, subset=0.05, feature_subset=None, setti
         Bad arguments, or a subset too small for the rank (with the smallest
         fraction that would do).
     SourceError, DataError, MemoryLimitError, OutputError
+    ClusterError
+        Unreachable scheduler, workers that differ or cannot read the source,
+        a failure on the cluster while reading.
     """
     fraction = parse_fraction("subset", subset)
     feature_fraction = None if feature_subset is None else parse_fraction("feature_subset", feature_subset)
@@ -96,6 +107,10 @@ def compare_subset(source, rank: int, *, subset=0.05, feature_subset=None, setti
         raise UsageError(f"missing must be one of refuse, fill-mean; got {missing!r}")
     if not isinstance(standardize, (bool, np.bool_)):
         raise UsageError(f"standardize must be True or False; got {standardize!r}")
+    if cluster is not None:
+        from rankfold.cluster.session import check_cluster_argument  # imports no dask
+
+        check_cluster_argument(cluster)
     limit = parse_memory(memory_limit) if memory_limit is not None else default_memory_limit()
     chosen = as_settings(settings) if settings is not None else None
     folder = ReportFolder(out) if out is not None else None
@@ -126,11 +141,12 @@ def compare_subset(source, rank: int, *, subset=0.05, feature_subset=None, setti
             scratch_parent = tempfile.mkdtemp(prefix="rankfold-compare-")
             try:
                 return _run_subset(src, draw, rank, chosen, target, limit, options,
-                                   os.path.join(scratch_parent, "scratch"))
+                                   os.path.join(scratch_parent, "scratch"), cluster)
             finally:
                 shutil.rmtree(scratch_parent, ignore_errors=True)
         with folder as tmp:
-            comparison = _run_subset(src, draw, rank, chosen, target, limit, options, os.path.join(tmp, "scratch"))
+            comparison = _run_subset(src, draw, rank, chosen, target, limit, options, os.path.join(tmp, "scratch"),
+                                     cluster)
             shutil.rmtree(os.path.join(tmp, "scratch"), ignore_errors=True)
             write_report(comparison, tmp)
         return comparison
@@ -140,10 +156,10 @@ def compare_subset(source, rank: int, *, subset=0.05, feature_subset=None, setti
 
 
 def _run_subset(src: Source, draw, rank: int, settings: list[Setting], target: float, limit: int,
-                options: dict, scratch: str) -> dict:
+                options: dict, scratch: str, cluster=None) -> dict:
     import rankfold
 
-    sub = materialize(src, draw, limit, scratch)
+    sub, cluster_summary = _read_subset(src, draw, limit, scratch, cluster)
     held = sub.data.nbytes if isinstance(sub, ArraySource) else 0
     run_limit = limit - held
     try:
@@ -186,7 +202,25 @@ def _run_subset(src: Source, draw, rank: int, settings: list[Setting], target: f
         "recommended": best["label"] if best is not None else None,
         "full_table_estimate": estimate,
     }
+    if cluster_summary is not None:
+        comparison["cluster"] = cluster_summary
     return plain(comparison)
+
+
+def _read_subset(src: Source, draw, limit: int, scratch: str, cluster) -> tuple[Source, dict | None]:
+    """The subset, read here or on ``cluster``; with the cluster session's summary (None when serial).
+
+    The session ends once the subset is read: the runs that follow are timed
+    against each other in this process, and a local cluster's worker
+    processes would only compete with them for cores and memory.
+    """
+    if cluster is None:
+        return materialize(src, draw, limit, scratch), None
+    from rankfold.cluster import connect
+
+    with connect(cluster, src) as session:
+        sub = materialize(src, draw, limit, scratch, session=session)
+        return sub, session.summary()
 
 
 def _source_name(path: str) -> str:
@@ -364,6 +398,9 @@ def compare_paths(paths, *, rank=None, out=None, target_angle: float = DEFAULT_T
             other = next(p for p in paths if p not in results)
             raise UsageError(f"{other}: not a rankfold result; compare takes either two result stores "
                              "(RESULT_A.zarr RESULT_B.zarr) or one data source with --rank")
+        if subset_options.get("cluster") is not None:
+            raise UsageError("cluster: comparing two stored results reads no table, so nothing runs on a cluster; "
+                             "--cluster applies to a subset comparison of one data source (SOURCE --rank K)")
         given = [k for k, v in subset_options.items() if v not in (None, False, "refuse", "rows")]
         if rank is not None or given:
             names = ", ".join(["rank"] * (rank is not None) + given)

@@ -198,12 +198,30 @@ class ArraySource(StoredMatrixSource):
                 "dtype": str(self.storage_dtype), "native_axis": "samples"}
 
 
-def materialize(source: Source, draw: SubsetDraw, memory_limit: int, scratch: str) -> Source:
+def materialize(source: Source, draw: SubsetDraw, memory_limit: int, scratch: str, session=None) -> Source:
     """Read the drawn subset into a samples x features float64 table.
 
     In memory when it takes at most a quarter of ``memory_limit``; otherwise in
     ``scratch/subset.npy`` (the caller removes ``scratch``).  Reads only the
     chosen units, each in pieces of at most an eighth of the ceiling.
+
+    Parameters
+    ----------
+    source : Source
+    draw : SubsetDraw
+    memory_limit : int
+        Bytes; also each cluster worker's ceiling for its reads.
+    scratch : str
+        Folder for ``subset.npy`` when the subset is held on disk.
+    session : rankfold.cluster.ClusterSession, optional
+        Read on the cluster's workers instead (:mod:`rankfold.cluster.subset`):
+        the same reads cut into groups, only the drawn rows travel back; the
+        table is the same array.
+
+    Returns
+    -------
+    Source
+        Shape ``(draw.rows.size, draw.features.size)``.
     """
     n_sub, m_sub = draw.rows.size, draw.features.size
     nbytes = n_sub * m_sub * 8
@@ -221,9 +239,19 @@ def materialize(source: Source, draw: SubsetDraw, memory_limit: int, scratch: st
     if source.native_axis == "features" and widest > piece_rows:
         # Samples stored as columns, and a chosen unit does not fit one read: every read of a
         # range of samples walks all the stored rows, so read the stored rows once instead.
-        filled = _fill_from_features(source, draw, data, memory_limit)
-    else:
+        if session is None:
+            filled = _fill_from_features(source, draw, data, memory_limit)
+        else:
+            from rankfold.cluster.subset import fill_from_features
+
+            filled = fill_from_features(session, source, draw, data, feature_blocks(source, draw, memory_limit),
+                                        memory_limit)
+    elif session is None:
         filled = _fill_from_samples(source, draw, data, piece_rows)
+    else:
+        from rankfold.cluster.subset import fill_from_samples
+
+        filled = fill_from_samples(session, source, draw, data, _read_spans(source, draw), piece_rows, memory_limit)
     if filled != n_sub:  # pragma: no cover - guards the bookkeeping above
         raise DataError(f"{source.path}: read {filled} subset samples, expected {n_sub}")
     if target is None:
@@ -256,33 +284,80 @@ def _read_spans(source: Source, draw: SubsetDraw) -> list[tuple[int, int]]:
 
 def _fill_from_samples(source: Source, draw: SubsetDraw, data: np.ndarray, piece_rows: int) -> int:
     """Read each span of :func:`_read_spans` in consecutive pieces of ``piece_rows``; keep the drawn rows."""
-    all_features = draw.features.size == source.n_features
     filled = 0
-    for start, stop in _read_spans(source, draw):
-        lo, hi = np.searchsorted(draw.rows, [start, stop])
+    for picked in pick_rows(source, _read_spans(source, draw), draw.rows, draw.features, piece_rows):
+        data[filled:filled + picked.shape[0]] = picked
+        filled += picked.shape[0]
+    return filled
+
+
+def pick_rows(source: Source, spans, rows: np.ndarray, features: np.ndarray, piece_rows: int):
+    """The drawn rows of each span, read in consecutive pieces of at most ``piece_rows`` samples.
+
+    Parameters
+    ----------
+    source : Source
+    spans : sequence of (int, int)
+        Sample ranges from :func:`_read_spans`, increasing.
+    rows : ndarray of int64
+        Drawn sample indices, increasing; at least those inside ``spans``.
+    features : ndarray of int64
+        Kept feature indices, increasing.
+    piece_rows : int
+
+    Yields
+    ------
+    ndarray, shape (r, features.size)
+        The drawn rows of one piece, in order (pieces without drawn rows are skipped).
+    """
+    all_features = features.size == source.n_features
+    for start, stop in spans:
+        lo, hi = np.searchsorted(rows, [start, stop])
         for a in range(start, stop, piece_rows):
             b = min(stop, a + piece_rows)
-            r0, r1 = np.searchsorted(draw.rows[lo:hi], [a, b]) + lo
+            r0, r1 = np.searchsorted(rows[lo:hi], [a, b]) + lo
             if r1 == r0:
                 continue
             # read() handles the orientation: samples stored as columns come back as rows.
             block = source.read("samples", a, b)
-            picked = block[draw.rows[r0:r1] - a]
-            data[filled:filled + (r1 - r0)] = picked if all_features else picked[:, draw.features]
-            filled += r1 - r0
-            del block, picked
-    return filled
+            picked = block[rows[r0:r1] - a]
+            del block
+            yield picked if all_features else picked[:, features]
+            del picked
+
+
+def feature_blocks(source: Source, draw: SubsetDraw, memory_limit: int) -> list[tuple[int, int]]:
+    """Ranges of whole features (stored rows) to read, each at most an eighth of the ceiling, holding kept features."""
+    step = max(1, (memory_limit // 8) // max(1, source.bytes_per_unit("features")))
+    blocks = []
+    for a in range(0, source.n_features, step):
+        b = min(source.n_features, a + step)
+        f0, f1 = np.searchsorted(draw.features, [a, b])
+        if f1 > f0:
+            blocks.append((a, b))
+    return blocks
+
+
+def pick_columns(source: Source, blocks, rows: np.ndarray, features: np.ndarray):
+    """The drawn samples of the kept features of each feature block of :func:`feature_blocks`.
+
+    Yields
+    ------
+    (f0, f1, ndarray of shape (rows.size, f1 - f0))
+        Positions ``f0:f1`` into ``features`` and the subset's columns there.
+    """
+    for a, b in blocks:
+        f0, f1 = (int(i) for i in np.searchsorted(features, [a, b]))
+        block = source.read("features", a, b)  # (b - a, n_samples)
+        picked = block[features[f0:f1] - a][:, rows].T
+        del block
+        yield f0, f1, picked
+        del picked
 
 
 def _fill_from_features(source: Source, draw: SubsetDraw, data: np.ndarray, memory_limit: int) -> int:
     """Read blocks of whole features (the stored rows) once; keep the drawn samples and features."""
-    step = max(1, (memory_limit // 8) // max(1, source.bytes_per_unit("features")))
-    for a in range(0, source.n_features, step):
-        b = min(source.n_features, a + step)
-        f0, f1 = np.searchsorted(draw.features, [a, b])
-        if f1 == f0:
-            continue
-        block = source.read("features", a, b)  # (b - a, n_samples)
-        data[:, f0:f1] = block[draw.features[f0:f1] - a][:, draw.rows].T
-        del block
+    for f0, f1, picked in pick_columns(source, feature_blocks(source, draw, memory_limit), draw.rows,
+                                       draw.features):
+        data[:, f0:f1] = picked
     return draw.rows.size

@@ -14,6 +14,8 @@ def comparison_lines(c: dict) -> list[str]:
         s = c["subset"]
         lines.append(f"subset   {s['samples']:,} samples x {s['features']:,} features "
                      f"(fraction {s['fraction']:.3g}, seed {s['seed']})")
+    if c.get("cluster"):
+        lines.append(cluster_line(c["cluster"]))
     fr = ", ".join(f"{v:.2%}" for v in ref["variance_fraction"])
     lines.append(f"reference {ref['label']}: {ref['passes']} pass(es), {ref['seconds']:.2f} s; "
                  f"variance fractions {fr}")
@@ -41,6 +43,13 @@ def comparison_lines(c: dict) -> list[str]:
             lines.append(f"full table with it: about {_duration(est['seconds'])}, {est['passes']} passes, peak "
                          f"memory about {format_bytes(est['peak_memory'])} ({est['route']} route, planner estimate)")
     return lines
+
+
+def cluster_line(info: dict) -> str:
+    """Where the subset was read: ``subset read on local:2 (2 workers, ...)``; the runs are this process's."""
+    where = info["kind"] if str(info["kind"]).startswith("local:") else info["scheduler"]
+    return (f"subset read on {where} ({info['workers']} worker(s), {info['tasks']} task(s), "
+            f"{format_bytes(info['bytes_moved'])} moved); the runs below ran in this process")
 
 
 def _worst(values):

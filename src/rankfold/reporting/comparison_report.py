@@ -166,6 +166,10 @@ def write_comparison_report(comparison: dict, out_dir, *, result_a=None, result_
     if sub:
         facts.append(("subset", f"{int(sub['samples']):,} samples x {int(sub['features']):,} features "
                                 f"({float(sub['fraction']):.2%} of the samples, seed {sub['seed']})"))
+    if comparison.get("cluster"):
+        from rankfold.compare.text import cluster_line
+
+        facts.append(("cluster", cluster_line(comparison["cluster"]).removeprefix("subset read on ")))
     for name, r in (("result A", result_a), ("result B", result_b)):
         if r is not None:
             facts.append((name, f"{os.path.abspath(r.path)} ({r.route} route, {r.n_samples:,} x {r.n_features:,})"))
