@@ -128,8 +128,9 @@ def _source_options(p: argparse.ArgumentParser) -> None:
 
 def _cluster_option(p: argparse.ArgumentParser) -> None:
     p.add_argument("--cluster", metavar="ADDRESS|local:N",
-                   help="run the passes on a dask.distributed cluster: a scheduler address "
-                        "(tcp://host:8786) or local:N for N worker processes on this machine")
+                   help="read the data on a dask.distributed cluster (every pass of decompose and "
+                        "project, the subset of compare): a scheduler address (tcp://host:8786) or "
+                        "local:N for N worker processes on this machine")
 
 
 def _planning_options(p: argparse.ArgumentParser) -> None:

@@ -160,14 +160,14 @@ def check_output_path(out: str, overwrite: bool) -> None:
         if fs.exists(p):
             if not overwrite:
                 raise OutputError(f"{out}: already exists; choose another --out or pass --overwrite to replace it")
-            if not _is_result(out):
+            if not is_result(out):
                 raise OutputError(f"{out}: exists and is not a rankfold result, so --overwrite will not "
                                   "replace it; remove it yourself or choose another --out")
         return  # object stores have no folders to check; a write failure is reported when it happens
     if os.path.lexists(out):
         if not overwrite:
             raise OutputError(f"{out}: already exists; choose another --out or pass --overwrite to replace it")
-        if not _is_result(out):
+        if not is_result(out):
             raise OutputError(f"{out}: exists and is not a rankfold result, so --overwrite will not "
                               "replace it; remove it yourself or choose another --out")
     check_parent_folder(out)
@@ -182,7 +182,7 @@ def check_parent_folder(out: str, hint: str = "") -> None:
         raise OutputError(f"{out}: the folder {parent} is not writable{hint}")
 
 
-def _is_result(path: str) -> bool:
+def is_result(path: str) -> bool:
     """Whether ``path`` is a folder holding a rankfold result (complete or not)."""
     import json
 

@@ -389,10 +389,10 @@ def compare_paths(paths, *, rank=None, out=None, target_angle: float = DEFAULT_T
     ``rank``): :func:`compare_subset`.  Anything else is a usage error that
     says which argument is what.
     """
-    from rankfold.result import _is_result
+    from rankfold.result import is_result
 
     paths = [os.fspath(p) for p in paths]
-    results = [p for p in paths if _is_result(p)]
+    results = [p for p in paths if is_result(p)]
     if len(paths) == 2:
         if len(results) != 2:
             other = next(p for p in paths if p not in results)

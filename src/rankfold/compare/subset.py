@@ -119,12 +119,7 @@ def _sample_alignment(source: Source) -> int:
     their units need no alignment (the ``.npy`` reader's preferred step, 8 MB
     of rows, would leave too few units to spread the subset).
     """
-    arr = getattr(source, "_arr", None)
-    chunks = getattr(arr, "chunks", None)
-    if chunks is None or len(chunks) != 2:
-        return 1
-    # Samples stored as rows: a chunk spans several rows; as columns, several columns.
-    return int(chunks[0] if source.native_axis == "samples" else chunks[1])
+    return source.sample_chunk()
 
 
 def draw_subset(source: Source, fraction: float, feature_fraction: float | None = None,
@@ -268,7 +263,7 @@ def _read_spans(source: Source, draw: SubsetDraw) -> list[tuple[int, int]]:
     (reading rows from its middle decodes it from its start, but consecutive
     reads continue one stream), otherwise a chosen unit (whole Zarr chunks).
     """
-    starts = getattr(source, "_group_starts", None)  # Parquet: first row of every row group
+    starts = source.group_starts()  # Parquet: first row of every row group
     if starts is None:
         edges = [draw.units.bounds[i] for i in draw.chosen_units]
     else:

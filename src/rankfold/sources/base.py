@@ -135,6 +135,14 @@ class Source(ABC):
         """Preferred block-size multiple along ``axis`` (a storage chunk), 1 if none."""
         return 1
 
+    def sample_chunk(self) -> int:
+        """Samples per storage chunk, where reading part of a chunk decodes all of it; 1 if reads are exact."""
+        return 1
+
+    def group_starts(self) -> list[int] | None:
+        """First sample of each storage group a read decodes from its start (Parquet row groups), or None."""
+        return None
+
     def min_block_bytes(self, axis: str) -> int:
         """The least block memory a pass along ``axis`` can run with (one unit here)."""
         return self.bytes_per_unit(axis)

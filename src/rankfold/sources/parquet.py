@@ -233,6 +233,9 @@ class ParquetSource(Source):
     def alignment(self, axis: str) -> int:
         return 1
 
+    def group_starts(self) -> list[int]:
+        return list(self._group_starts)
+
     def _group_sizes(self) -> tuple[int, int]:
         """Largest compressed and largest decoded size of a row group's selected columns."""
         if self._largest_group_bytes is None:

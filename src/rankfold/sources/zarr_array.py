@@ -107,6 +107,10 @@ class ZarrSource(StoredMatrixSource):
     def alignment(self, axis: str) -> int:
         return self._chunk_rows if axis == self.native_axis else 1
 
+    def sample_chunk(self) -> int:
+        # Samples stored as rows: a chunk spans several rows; as columns, several columns.
+        return int(self._arr.chunks[0] if self.native_axis == "samples" else self._arr.chunks[1])
+
     def bytes_per_unit(self, axis: str) -> int:
         # Raw chunks are decoded a few at a time (fixed_read_bytes), not per block.
         return self.other_length(axis) * FLOAT_BYTES_IN_FLIGHT
