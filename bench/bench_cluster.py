@@ -115,15 +115,17 @@ def fmt_bytes(n: float) -> str:
 
 def parent_main(args) -> None:
     tables = {
-        "tall": (bench_tall.ensure_data(tall_args(args))["zarr"],
+        "tall": (bench_tall.ensure_data(tall_args(args))["zarr"] if "tall" in args.tables else None,
                  {"route": "features", "memory_limit": args.memory_limit, "scores": args.with_scores}),
-        "wide": (bench_wide.ensure_data(wide_args(args))["zarr"],
+        "wide": (bench_wide.ensure_data(wide_args(args))["zarr"] if "wide" in args.tables else None,
                  {"route": "sketch", "memory_limit": args.memory_limit, "sketch": "subspace",
                   "scores": args.with_scores}),
     }
     lines = [f"{'table':6} {'setup':8} {'median s':>9} {'vs serial':>9} {'start-up s':>10} {'read':>10} "
              f"{'moved (bound)':>14} {'worker->worker':>15} {'tasks':>6}"]
     for table, (data, options) in tables.items():
+        if table not in args.tables:
+            continue
         runs = {s: [] for s in SETUPS}
         for _ in range(args.repeat):  # interleaved, so a busy spell hits every setup alike
             for setup in SETUPS:
@@ -159,6 +161,8 @@ def main(argv=None) -> None:
     p.add_argument("--with-scores", action="store_true",
                    help="write scores too, to a result store beside the data (on a cluster each worker "
                         "writes its own chunks; default: without)")
+    p.add_argument("--tables", nargs="+", choices=("tall", "wide"), default=["tall", "wide"],
+                   help="which tables to run (default both)")
     p.add_argument("--child", action="store_true", help=argparse.SUPPRESS)
     p.add_argument("--setup", help=argparse.SUPPRESS)
     p.add_argument("--data", help=argparse.SUPPRESS)

@@ -78,6 +78,13 @@ class ClusterSession:
         self.tasks = 0
         self.outputs_checked: set[str] = set()
 
+    @property
+    def tasks_per_pass(self) -> int:
+        """How many ranges a pass is cut into: a few per worker thread, so a slow worker does not hold all back."""
+        from rankfold.cluster.passes import TASKS_PER_THREAD
+
+        return TASKS_PER_THREAD * self.threads
+
     def set_blas_limits(self) -> None:
         """Each host's cores divided among the worker threads it runs (at least 1)."""
         self.blas_limits = self._blas_limits(self.client.scheduler_info()["workers"])

@@ -223,9 +223,15 @@ def _run_rows(inp: RouteInput, partition, omega, tests, tall_in_memory) -> Decom
             state = CovarianceProduct(basis, center, scale, missing=fill)
             if last and tall_in_memory is not None:
                 width = basis.shape[1] - tests.shape[1]
-                # A scratch folder beside the output is one cluster workers can fill themselves.
+                # A scratch folder beside the output is one cluster workers can fill themselves,
+                # each a range of whole chunks: chunks small enough for several ranges per thread
+                # (otherwise a table of a few chunks leaves workers idle in the last pass).
+                chunk_bytes = scratch_chunk_bytes(inp.memory_limit)
+                if inp.cluster is not None:
+                    chunk_bytes = min(chunk_bytes, TallProduct.bytes_needed(n, width)
+                                      // (2 * inp.cluster.tasks_per_pass))
                 parts.tall = TallProduct(n, width, None if tall_in_memory else scratch_folder(inp),
-                                         scratch_chunk_bytes(inp.memory_limit), shared=inp.scratch is not None)
+                                         chunk_bytes, shared=inp.scratch is not None)
                 state = CovarianceProduct(basis, center, scale, parts.tall, width, missing=fill)
             try:
                 state, rec = run_pass(label, inp, partition, state, check)
