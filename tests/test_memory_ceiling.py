@@ -34,6 +34,8 @@ import textwrap
 import numpy as np
 import pytest
 
+import _rss
+
 MB = 10**6
 CEILING = 64 * MB
 TABLE_BYTES = 300 * MB  # on disk, uncompressed float32: more than 4x the ceiling
@@ -41,28 +43,13 @@ WIDTH = 128  # features
 ROWS = TABLE_BYTES // (WIDTH * 4)
 GEN_ROWS = 3 * 8192  # rows generated and written at a time: 12.6 MB of float32, whole zarr chunks
 
-DRIVER = textwrap.dedent(r"""
-    import gc, json, os, sys, threading, time
+DRIVER = _rss.PRELUDE + textwrap.dedent(r"""
+    import gc, json, os, sys, time
     import numpy, scipy, scipy.linalg, zarr, pyarrow, pyarrow.parquet, psutil
     import rankfold
+    from _rss import PeakMeter, vm
 
     big, small, ceiling, route, runs = sys.argv[1], sys.argv[2], int(sys.argv[3]), sys.argv[4], int(sys.argv[5])
-    proc = psutil.Process()
-
-    def vm(key):
-        with open("/proc/self/status") as fh:
-            for line in fh:
-                if line.startswith(key + ":"):
-                    return int(line.split()[1]) * 1024
-        raise KeyError(key)
-
-    def reset_hwm():
-        try:
-            with open("/proc/self/clear_refs", "w") as fh:
-                fh.write("5")
-        except OSError:
-            return False
-        return vm("VmHWM") <= vm("VmRSS") + 2**20
 
     # Results go to a store, as from the command line: the scores stream to disk whole chunks
     # at a time (a result returned in memory would hold them, counted against the ceiling).
@@ -76,27 +63,14 @@ DRIVER = textwrap.dedent(r"""
 
     report = {"baseline": baseline, "runs": []}
     for run in range(runs):
-        hwm_reset = reset_hwm()
-        sampled = [vm("VmRSS")]
-        stop = threading.Event()
-
-        def sample():
-            while not stop.is_set():
-                sampled.append(vm("VmRSS"))
-                time.sleep(0.005)
-
-        sampler = threading.Thread(target=sample, daemon=True)
-        sampler.start()
-        t0 = time.perf_counter()
-        result = rankfold.decompose(big, 3, memory_limit=ceiling, route=route,
-                                    out=os.path.join(outs, f"run{run}.zarr"))
-        seconds = time.perf_counter() - t0
-        stop.set()
-        sampler.join()
-        hwm = vm("VmHWM") if hwm_reset else None
+        with PeakMeter(interval=0.005) as meter:
+            t0 = time.perf_counter()
+            result = rankfold.decompose(big, 3, memory_limit=ceiling, route=route,
+                                        out=os.path.join(outs, f"run{run}.zarr"))
+            seconds = time.perf_counter() - t0
         report["runs"].append({
-            "peak": max(max(sampled), hwm or 0), "hwm": hwm, "sampled_peak": max(sampled),
-            "samples": len(sampled), "rss_after": vm("VmRSS"), "seconds": seconds,
+            "peak": meter.peak, "hwm": meter.hwm, "sampled_peak": meter.sampled,
+            "samples": meter.samples, "rss_after": vm("VmRSS"), "seconds": seconds,
             "route": result.route, "passes": result.attrs["passes"],
             "n_samples": result.n_samples, "n_features": result.n_features,
             "variance": [float(v) for v in result.variance],
@@ -105,6 +79,7 @@ DRIVER = textwrap.dedent(r"""
         gc.collect()
     print(json.dumps(report))
 """)
+
 
 
 # --------------------------------------------------------------------------- tables

@@ -23,6 +23,8 @@ import textwrap
 import numpy as np
 import pytest
 
+import _rss
+
 import rankfold
 from rankfold.api import plan_request
 from rankfold.cli import main
@@ -275,62 +277,36 @@ def test_planned_block_size_is_what_the_run_reads(write_table, fmt, route):
 #
 # Method (as in test_memory_ceiling.py): a child process imports everything, warms up with a small
 # table of the same format through the same route and options, takes its resident set (VmRSS) as
-# the baseline, resets the kernel's high-water mark (write 5 to /proc/self/clear_refs, Linux >= 4.0)
-# and samples VmRSS every 2 ms on a thread; peak = max(VmHWM, sampled).  The figure compared with
-# the plan's estimate is peak - baseline.  One child per run, so no run inherits another's memory.
+# the baseline, and measures the run's peak with tests/_rss.py (VmHWM after a reset, and VmRSS
+# sampled every 2 ms).  The figure compared with the plan's estimate is peak - baseline.  One
+# child per run, so no run inherits another's memory.
 
-RSS_DRIVER = textwrap.dedent(r"""
-    import gc, json, sys, threading, time
+RSS_DRIVER = _rss.PRELUDE + textwrap.dedent(r"""
+    import gc, json, sys, time
     import numpy, scipy, scipy.linalg, zarr, pyarrow, pyarrow.parquet, psutil
     import rankfold
     from rankfold.machine import MachineSpeed
+    from _rss import PeakMeter, vm
 
     job = json.loads(sys.argv[1])
     speed = MachineSpeed(3e8, 2e10, 2, "given")
     kw = dict(memory_limit=job["limit"], route=job["route"], samples_as=job["samples_as"], speed=speed,
               **job["options"])
 
-    def vm(key):
-        with open("/proc/self/status") as fh:
-            for line in fh:
-                if line.startswith(key + ":"):
-                    return int(line.split()[1]) * 1024
-        raise KeyError(key)
-
-    def reset_hwm():
-        try:
-            with open("/proc/self/clear_refs", "w") as fh:
-                fh.write("5")
-        except OSError:
-            return False
-        return vm("VmHWM") <= vm("VmRSS") + 2**20
-
     warm = rankfold.decompose(job["small"], job["rank"], **kw)
     del warm
     gc.collect()
     time.sleep(0.2)
     baseline = vm("VmRSS")
-    hwm_reset = reset_hwm()
-    sampled = [vm("VmRSS")]
-    stop = threading.Event()
-
-    def sample():
-        while not stop.is_set():
-            sampled.append(vm("VmRSS"))
-            time.sleep(0.002)
-
-    sampler = threading.Thread(target=sample, daemon=True)
-    sampler.start()
     plans = []
-    result = rankfold.decompose(job["big"], job["rank"], on_plan=plans.append, **kw)
-    stop.set()
-    sampler.join()
-    hwm = vm("VmHWM") if hwm_reset else 0
-    print(json.dumps({"baseline": baseline, "peak": max(max(sampled), hwm), "hwm": hwm,
-                      "sampled": max(sampled), "estimate": plans[0].estimate.peak_memory,
+    with PeakMeter(interval=0.002) as meter:
+        result = rankfold.decompose(job["big"], job["rank"], on_plan=plans.append, **kw)
+    print(json.dumps({"baseline": baseline, "peak": meter.peak, "hwm": meter.hwm or 0,
+                      "sampled": meter.sampled, "estimate": plans[0].estimate.peak_memory,
                       "block_units": plans[0].estimate.block_units, "route": result.route,
                       "passes": [[p["name"], p["blocks"], p["largest_block"]] for p in result.attrs["passes"]]}))
 """)
+
 
 
 def _write_zarr(path, shape, chunks, seed=0):
