@@ -79,6 +79,27 @@ def planted_table(n: int, m: int, spectrum=None, *, seed: int = 0, offset_scale:
     return x.astype(dtype)
 
 
+@pytest.fixture(scope="module")
+def client():
+    """A real dask.distributed LocalCluster: two worker processes on loopback, one thread each.
+
+    One per test module that asks for it (a module may kill or patch its workers).
+    distributed is imported here only, so test modules without a cluster never load it.
+    """
+    import logging
+
+    from distributed import Client, LocalCluster
+
+    cluster = LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+                           dashboard_address=None, silence_logs=logging.ERROR)
+    c = Client(cluster, set_as_default=False)
+    try:
+        yield c
+    finally:
+        c.close()
+        cluster.close()
+
+
 @pytest.fixture
 def make_planted():
     return planted_table

@@ -8,7 +8,6 @@ per orientation, LAPACK through ``reference_pca`` (scipy.linalg.eigh on numpy.co
 
 from __future__ import annotations
 
-import logging
 import os
 import pickle
 import signal
@@ -25,20 +24,6 @@ from rankfold.folds import (ColumnMoments, ColumnScores, CovarianceProduct, Feat
                             GramProduct, SampleGram, StreamingSketch, tree_merge)
 
 EXACT = 1e-12
-
-
-@pytest.fixture(scope="module")
-def client():
-    from distributed import Client, LocalCluster
-
-    cluster = LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
-                           dashboard_address=None, silence_logs=logging.ERROR)
-    c = Client(cluster, set_as_default=False)
-    try:
-        yield c
-    finally:
-        c.close()
-        cluster.close()
 
 
 def _rel(a, b) -> float:
@@ -311,14 +296,16 @@ def test_worker_killed_in_the_middle_of_a_pass(client, make_planted, write_zarr,
     assert victim not in client.run(os.getpid).values()  # the killed process is gone, replaced
 
 
-def test_serial_runs_never_import_dask(planted, write_zarr):
+def test_serial_runs_never_import_dask(planted, write_zarr, tmp_path):
     """dask and distributed are imported only when a cluster is used (a fresh interpreter)."""
     path = write_zarr(planted)
     code = ("import sys, rankfold; rankfold.decompose(sys.argv[1], 2, route='features'); "
-            "rankfold.decompose(sys.argv[1], 2, route='sketch'); "
+            "r = rankfold.decompose(sys.argv[1], 2, route='sketch', out=sys.argv[2]); "
+            "rankfold.project(r, sys.argv[1], out=sys.argv[3]); "
             "print(sorted(m for m in sys.modules if m.split('.')[0] in ('dask', 'distributed')))")
     env = dict(os.environ, PYTHONPATH=os.pathsep.join(p for p in [_src_dir(), os.environ.get("PYTHONPATH")] if p))
-    done = subprocess.run([sys.executable, "-c", code, path], env=env, capture_output=True, text=True, timeout=120)
+    done = subprocess.run([sys.executable, "-c", code, path, str(tmp_path / "r.zarr"), str(tmp_path / "p.zarr")],
+                          env=env, capture_output=True, text=True, timeout=120)
     assert done.returncode == 0, done.stderr
     assert done.stdout.strip() == "[]"
 

@@ -9,7 +9,6 @@ numpy's ``xc @ L`` for the projection.
 
 from __future__ import annotations
 
-import logging
 import os
 import signal
 import subprocess
@@ -28,20 +27,6 @@ from rankfold.errors import ClusterError
 from rankfold.sources.base import Partition
 
 CHUNK = 256  # rows per chunk of the per-sample arrays in these tests
-
-
-@pytest.fixture(scope="module")
-def client():
-    from distributed import Client, LocalCluster
-
-    cluster = LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
-                           dashboard_address=None, silence_logs=logging.ERROR)
-    c = Client(cluster, set_as_default=False)
-    try:
-        yield c
-    finally:
-        c.close()
-        cluster.close()
 
 
 @pytest.fixture(autouse=True)

@@ -11,7 +11,6 @@ LAPACK ``eigvalsh`` of the subset's covariance for the exact run.
 from __future__ import annotations
 
 import json
-import logging
 import os
 import subprocess
 import sys
@@ -28,20 +27,6 @@ from rankfold.sources import open_source
 
 EXACT = 1e-12
 IN_MEMORY, ON_DISK = 10**8, 40_000  # ceilings: the subset in memory / in scratch, read in pieces of 20 samples
-
-
-@pytest.fixture(scope="module")
-def client():
-    from distributed import Client, LocalCluster
-
-    cluster = LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
-                           dashboard_address=None, silence_logs=logging.ERROR)
-    c = Client(cluster, set_as_default=False)
-    try:
-        yield c
-    finally:
-        c.close()
-        cluster.close()
 
 
 def _src_dir() -> str:

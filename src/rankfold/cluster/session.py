@@ -124,15 +124,9 @@ class ClusterSession:
         from rankfold.cluster.worker import probe
 
         spec = source.spec()
-        answers = self.client.run(probe, spec)
-        bad = {addr: why for addr, why in sorted(answers.items()) if why}
-        if bad:
-            addr, why = next(iter(bad.items()))
-            more = f" (and {len(bad) - 1} more worker(s))" if len(bad) > 1 else ""
-            raise ClusterError(
-                f"worker {addr}{more} cannot read {spec.path}: {why}. Workers open the data themselves: put it "
-                "on storage every worker sees at the same path (a shared file system or an fsspec URL "
-                "such as s3://bucket/table.zarr)")
+        _refuse_failures(self.client.run(probe, spec), f"cannot read {spec.path}",
+                         "Workers open the data themselves: put it on storage every worker sees at the same "
+                         "path (a shared file system or an fsspec URL such as s3://bucket/table.zarr)")
 
     def check_output(self, plan) -> None:
         """Every worker must open the store it will write rows into (a :class:`~rankfold.sample_outputs.StoredRows`)."""
@@ -140,21 +134,25 @@ class ClusterSession:
 
         if plan.group in self.outputs_checked:
             return
-        answers = self.client.run(probe_group, plan.group, plan.names)
-        bad = {addr: why for addr, why in sorted(answers.items()) if why}
-        if bad:
-            addr, why = next(iter(bad.items()))
-            more = f" (and {len(bad) - 1} more worker(s))" if len(bad) > 1 else ""
-            raise ClusterError(
-                f"worker {addr}{more} cannot write to {plan.group}: {why}. Workers write the per-sample outputs "
-                "themselves: put the output on storage every worker sees at the same path (a shared file "
-                "system or an fsspec URL such as s3://bucket/pca.zarr)")
+        _refuse_failures(self.client.run(probe_group, plan.group, plan.names), f"cannot write to {plan.group}",
+                         "Workers write the per-sample outputs themselves: put the output on storage every "
+                         "worker sees at the same path (a shared file system or an fsspec URL such as "
+                         "s3://bucket/pca.zarr)")
         self.outputs_checked.add(plan.group)
 
     def summary(self) -> dict:
         """What the store records about the cluster run."""
         return {"scheduler": self.address, "kind": self.label, "workers": len(self.workers),
                 "threads": self.threads, "tasks": self.tasks, "bytes_moved": int(self.bytes_moved)}
+
+
+def _refuse_failures(answers: dict, what: str, advice: str) -> None:
+    """Raise a ClusterError naming the first worker whose probe answered with a reason (None is fine)."""
+    bad = {addr: why for addr, why in sorted(answers.items()) if why}
+    if bad:
+        addr, why = next(iter(bad.items()))
+        more = f" (and {len(bad) - 1} more worker(s))" if len(bad) > 1 else ""
+        raise ClusterError(f"worker {addr}{more} {what}: {why}. {advice}")
 
 
 def client_versions() -> dict:
