@@ -20,67 +20,60 @@ from rankfold.sources.zarr_array import ZarrSource
 __all__ = ["open_source", "Source", "Partition", "NpySource", "ParquetSource", "ZarrSource"]
 
 
+SUFFIXES = (".parquet", ".parq", ".pq")
+
+
 def detect_format(path: str) -> str:
-    """``"parquet"``, ``"zarr"`` or ``"npy"`` from the path's name and contents."""
+    """``"parquet"``, ``"zarr"`` or ``"npy"`` from the path's name and contents (a local path or an fsspec URL)."""
     if is_url(path):
-        return _detect_url_format(path)
-    if not os.path.exists(path):
-        raise SourceError(f"{path}: no such file or folder")
-    if not os.access(path, os.R_OK):
-        raise SourceError(f"{path}: permission denied; the file must be readable by this user")
-    lower = path.rstrip("/").lower()
-    if os.path.isfile(path):
+        try:
+            fs, p = url_fs(path)
+            if not fs.exists(p):
+                raise SourceError(f"{path}: no such file or folder")
+            found = _detect_on(fs, p)
+        except SourceError:
+            raise
+        except Exception as exc:  # fsspec back ends raise their own types (credentials, network)
+            raise SourceError(f"{path}: cannot reach ({type(exc).__name__}: {exc})") from None
+    else:
+        if not os.path.exists(path):
+            raise SourceError(f"{path}: no such file or folder")
+        if not os.access(path, os.R_OK):
+            raise SourceError(f"{path}: permission denied; the file must be readable by this user")
+        import fsspec
+
+        try:
+            found = _detect_on(fsspec.filesystem("file"), path)
+        except OSError as exc:  # a folder inside that this user may not list
+            raise SourceError(f"{path}: cannot read ({exc.strerror or exc}); the files must be readable by "
+                              "this user") from None
+    if found is None:
+        raise SourceError(
+            f"{path}: unknown format; rankfold reads Parquet files or folders (.parquet), "
+            "Zarr arrays or groups (a folder with zarr.json or .zarray) and .npy files")
+    return found
+
+
+def _detect_on(fs, p: str) -> str | None:
+    """The format of ``p`` on file system ``fs``: by suffix, then by magic bytes, then by a folder's contents."""
+    lower = p.rstrip("/").lower()
+    if fs.isfile(p):
         if lower.endswith(".npy"):
             return "npy"
-        if lower.endswith((".parquet", ".parq", ".pq")):
+        if lower.endswith(SUFFIXES):
             return "parquet"
-        with open(path, "rb") as fh:
+        with fs.open(p, "rb") as fh:
             head = fh.read(6)
         if head.startswith(b"PAR1"):
             return "parquet"
         if head == b"\x93NUMPY":
             return "npy"
-    else:
-        if any(os.path.exists(os.path.join(path, f)) for f in ("zarr.json", ".zarray", ".zgroup")):
-            return "zarr"
-        for _root, _dirs, files in os.walk(path):
-            if any(f.endswith((".parquet", ".parq", ".pq")) for f in files):
-                return "parquet"
-    raise SourceError(
-        f"{path}: unknown format; rankfold reads Parquet files or folders (.parquet), "
-        "Zarr arrays or groups (a folder with zarr.json or .zarray) and .npy files")
-
-
-def _detect_url_format(url: str) -> str:
-    """:func:`detect_format` for an fsspec URL: the same rules, through the URL's filesystem."""
-    try:
-        fs, p = url_fs(url)
-        if not fs.exists(p):
-            raise SourceError(f"{url}: no such file or folder")
-        lower = p.rstrip("/").lower()
-        if fs.isfile(p):
-            if lower.endswith(".npy"):
-                return "npy"
-            if lower.endswith((".parquet", ".parq", ".pq")):
-                return "parquet"
-            with fs.open(p, "rb") as fh:
-                head = fh.read(6)
-            if head.startswith(b"PAR1"):
-                return "parquet"
-            if head == b"\x93NUMPY":
-                return "npy"
-        else:
-            if any(fs.exists(f"{p.rstrip('/')}/{f}") for f in ("zarr.json", ".zarray", ".zgroup")):
-                return "zarr"
-            if any(f.endswith((".parquet", ".parq", ".pq")) for f in fs.find(p)):
-                return "parquet"
-    except SourceError:
-        raise
-    except Exception as exc:  # fsspec back ends raise their own types (credentials, network)
-        raise SourceError(f"{url}: cannot reach ({type(exc).__name__}: {exc})") from None
-    raise SourceError(
-        f"{url}: unknown format; rankfold reads Parquet files or folders (.parquet), "
-        "Zarr arrays or groups (a folder with zarr.json or .zarray) and .npy files")
+        return None
+    if any(fs.exists(f"{p.rstrip('/')}/{f}") for f in ("zarr.json", ".zarray", ".zgroup")):
+        return "zarr"
+    if any(f.endswith(SUFFIXES) for f in fs.find(p)):
+        return "parquet"
+    return None
 
 
 def open_source(path: str, *, samples_as: str = "rows", columns=None, exclude=None,
