@@ -342,8 +342,13 @@ def test_feature_subset_too_small_for_rank_plus_oversampling(tmp_path, digits):
 def test_existing_or_unwritable_report_folder_is_refused(tmp_path, digits):
     path = _parquet(tmp_path, digits, "digits")
     (tmp_path / "taken").mkdir()
-    with pytest.raises(OutputError, match="taken: already exists"):
+    (tmp_path / "taken" / "notes.txt").write_text("mine")
+    with pytest.raises(OutputError, match="taken: folder exists and is not empty"):
         rankfold.compare_subset(path, 2, out=str(tmp_path / "taken"))
+    # --overwrite replaces only a rankfold report, never a folder of other files
+    with pytest.raises(OutputError, match="is not a rankfold report"):
+        rankfold.compare_subset(path, 2, out=str(tmp_path / "taken"), overwrite=True)
+    assert (tmp_path / "taken" / "notes.txt").read_text() == "mine"
     with pytest.raises(OutputError, match="does not exist"):
         rankfold.compare_subset(path, 2, out=str(tmp_path / "no" / "such" / "r"))
 
@@ -398,7 +403,13 @@ def test_cli_compare_success_and_failures(tmp_path, digits):
     assert proc.returncode == 2 and "unknown method 'lanczos'" in proc.stderr
 
     proc = _cli("compare", path, "--rank", 3, "--out", out)  # exists
-    assert proc.returncode == 5 and f"{out}: already exists" in proc.stderr
+    assert proc.returncode == 5 and f"{out}: folder exists and is not empty" in proc.stderr
+    assert "--overwrite" in proc.stderr
+    proc = _cli("compare", path, "--rank", 3, "--settings", "krylov:p=10,q=1", "--out", out, "--overwrite")
+    assert proc.returncode == 0, proc.stderr
+    # the new report replaced the old one whole: only the one setting asked for this time
+    assert [e["label"] for e in _saved(out)["settings"]] == ["krylov p=10 q=1"]
+    assert not [n for n in os.listdir(tmp_path) if n.startswith(".")]  # no partial or replaced folder left
 
 
 def test_cli_compare_two_results(tmp_path, digits):

@@ -89,6 +89,7 @@ def _parser() -> argparse.ArgumentParser:
     c.add_argument("--target-angle", type=float, default=None, metavar="DEG",
                    help="largest angle to the exact components a setting may have (default 5 degrees)")
     c.add_argument("--seed", type=int, help="seed of the subset and of the settings (default 0)")
+    c.add_argument("--overwrite", action="store_true", help="replace an earlier report folder at --out")
     _source_options(c)
     _cluster_option(c)
 
@@ -245,7 +246,7 @@ def _compare(args) -> int:
     from rankfold.compare.text import comparison_lines
 
     comparison = compare_paths(
-        args.paths, rank=args.rank, out=args.out,
+        args.paths, rank=args.rank, out=args.out, overwrite=args.overwrite,
         target_angle=DEFAULT_TARGET_ANGLE if args.target_angle is None else args.target_angle,
         subset=args.subset, feature_subset=args.feature_subset, settings=args.settings, seed=args.seed,
         memory_limit=args.memory_limit, standardize=args.standardize, missing=args.missing,

@@ -39,7 +39,8 @@ DEFAULT_TARGET_ANGLE = 5.0
 def compare_subset(source, rank: int, *, subset=0.05, feature_subset=None, settings=None,
                    target_angle: float = DEFAULT_TARGET_ANGLE, seed: int = 0, memory_limit=None,
                    out=None, standardize: bool = False, missing: str = "refuse", samples_as: str = "rows",
-                   columns=None, exclude=None, missing_code=None, array=None, cluster=None) -> dict:
+                   columns=None, exclude=None, missing_code=None, array=None, cluster=None,
+                   overwrite: bool = False) -> dict:
     """Exact against randomized principal components on a random subset of a table.
 
     Draws a reproducible subset (see :mod:`rankfold.compare.subset`), runs the
@@ -69,8 +70,9 @@ def compare_subset(source, rank: int, *, subset=0.05, feature_subset=None, setti
     memory_limit : int or str, optional
         Ceiling for the subset and the runs on it (default 60% of available memory).
     out : str, optional
-        Report folder to create (refused if it exists): ``index.html``,
-        ``figures/*.png`` and ``comparison.json`` (:mod:`rankfold.reporting`).
+        Report folder to create: ``index.html``, ``figures/*.png`` and
+        ``comparison.json`` (:mod:`rankfold.reporting`).  A folder holding
+        anything is refused unless ``overwrite``.
     standardize, missing, samples_as, columns, exclude, missing_code, array
         As in :func:`rankfold.decompose`.
     cluster : distributed.Client or str, optional
@@ -113,7 +115,7 @@ def compare_subset(source, rank: int, *, subset=0.05, feature_subset=None, setti
         check_cluster_argument(cluster)
     limit = parse_memory(memory_limit) if memory_limit is not None else default_memory_limit()
     chosen = as_settings(settings) if settings is not None else None
-    folder = ReportFolder(out) if out is not None else None
+    folder = ReportFolder(out, overwrite) if out is not None else None
 
     opened = isinstance(source, Source)
     src = source if opened else open_source(os.fspath(source), samples_as=samples_as, columns=columns,
@@ -382,7 +384,8 @@ def _percent(f: float) -> str:
     return f"{100 * f:.3g}%"
 
 
-def compare_paths(paths, *, rank=None, out=None, target_angle: float = DEFAULT_TARGET_ANGLE, **subset_options) -> dict:
+def compare_paths(paths, *, rank=None, out=None, target_angle: float = DEFAULT_TARGET_ANGLE, overwrite: bool = False,
+                  **subset_options) -> dict:
     """What ``rankfold compare`` does with its positional arguments.
 
     Two rankfold results: :func:`compare_results`.  One data source (with
@@ -408,7 +411,7 @@ def compare_paths(paths, *, rank=None, out=None, target_angle: float = DEFAULT_T
                              "not to two stored results")
         from rankfold.compare.results import compare_results  # it builds on this module
 
-        return compare_results(paths[0], paths[1], out=out, target_angle=target_angle)
+        return compare_results(paths[0], paths[1], out=out, target_angle=target_angle, overwrite=overwrite)
     if len(paths) != 1:
         raise UsageError(f"compare takes one data source or two result stores; got {len(paths)} paths")
     if results:
@@ -418,7 +421,7 @@ def compare_paths(paths, *, rank=None, out=None, target_angle: float = DEFAULT_T
         raise UsageError(f"{paths[0]}: a subset comparison needs --rank K")
     options = {k: v for k, v in subset_options.items() if v is not None}
     options.setdefault("seed", 0)
-    return compare_subset(paths[0], rank, out=out, target_angle=target_angle, **options)
+    return compare_subset(paths[0], rank, out=out, target_angle=target_angle, overwrite=overwrite, **options)
 
 
 def report_page(folder: str) -> str | None:

@@ -9,20 +9,7 @@ import shutil
 import numpy as np
 
 from rankfold.errors import OutputError
-
-def check_report_folder(out: str) -> str:
-    """Refuse an existing ``out`` or one whose parent is missing or not writable; return it absolute."""
-    path = os.path.abspath(os.fspath(out))
-    if os.path.lexists(path):
-        raise OutputError(f"{out}: already exists; a comparison writes a new report folder, so choose "
-                          "another --out or remove the old one")
-    parent = os.path.dirname(path)
-    if not os.path.isdir(parent):
-        raise OutputError(f"{out}: the folder {parent} does not exist; create it first")
-    if not os.access(parent, os.W_OK):
-        raise OutputError(f"{out}: the folder {parent} is not writable; choose another --out")
-    return path
-
+from rankfold.reporting.output import check_report_folder, move_into_place
 
 class ReportFolder:
     """``with ReportFolder(out) as tmp:`` write into ``tmp``; renamed to ``out`` on success only.
@@ -31,8 +18,12 @@ class ReportFolder:
     error the temporary folder (and the subset scratch inside it) is removed.
     """
 
-    def __init__(self, out: str):
-        self.out = check_report_folder(out)
+    def __init__(self, out: str, overwrite: bool = False):
+        # An existing folder is refused unless overwrite, and then replaced only if it is empty
+        # or a rankfold report (reporting.output.check_report_folder).
+        check_report_folder(os.fspath(out), overwrite)
+        self.out = os.path.abspath(os.fspath(out))
+        self.overwrite = overwrite
         parent, name = os.path.split(self.out)
         self.tmp = os.path.join(parent, f".{name}.partial-{os.getpid()}")
 
@@ -50,9 +41,9 @@ class ReportFolder:
             return False
         shutil.rmtree(os.path.join(self.tmp, "scratch"), ignore_errors=True)
         try:
-            if os.path.lexists(self.out):
+            if os.path.lexists(self.out) and not self.overwrite:
                 raise OutputError(f"{self.out}: appeared while the comparison ran; the report was not written")
-            os.rename(self.tmp, self.out)
+            move_into_place(self.tmp, self.out)
         except OSError as exc:
             shutil.rmtree(self.tmp, ignore_errors=True)
             raise OutputError(f"{self.out}: cannot write the report ({exc.strerror or exc})") from None

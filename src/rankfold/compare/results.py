@@ -17,7 +17,7 @@ from rankfold.errors import DataError
 from rankfold.result import Result, open_result
 
 
-def compare_results(a, b, *, out=None, target_angle: float = DEFAULT_TARGET_ANGLE) -> dict:
+def compare_results(a, b, *, out=None, target_angle: float = DEFAULT_TARGET_ANGLE, overwrite: bool = False) -> dict:
     """The per-component figures of two stored results of the same source, with ``a`` as reference.
 
     Parameters
@@ -26,7 +26,8 @@ def compare_results(a, b, *, out=None, target_angle: float = DEFAULT_TARGET_ANGL
         Result stores (or opened results).  Their feature sets must be equal
         (the order may differ: ``b`` is aligned to ``a`` by feature name).
     out : str, optional
-        Report folder to create (refused if it exists).
+        Report folder to create; a folder holding anything is refused unless ``overwrite``
+        (and then replaced only if it is a rankfold report).
     target_angle : float
         Degrees; ``meets_target`` says whether every compared component of
         ``b`` is closer than this to ``a``'s.
@@ -47,7 +48,7 @@ def compare_results(a, b, *, out=None, target_angle: float = DEFAULT_TARGET_ANGL
     OutputError
     """
     target = _check_angle(target_angle)
-    folder = ReportFolder(out) if out is not None else None
+    folder = ReportFolder(out, overwrite) if out is not None else None
     ra = a if isinstance(a, Result) else open_result(os.fspath(a))
     rb = b if isinstance(b, Result) else open_result(os.fspath(b))
     order = _align_features(ra, rb)

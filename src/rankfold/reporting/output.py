@@ -71,16 +71,7 @@ def write_folder(out_dir: str, files: dict[str, bytes], overwrite: bool) -> str:
             os.makedirs(os.path.dirname(path), exist_ok=True)
             with open(path, "wb") as fh:
                 fh.write(data)
-        if os.path.lexists(out_dir):
-            # An empty folder or a previous report (checked above): move it aside first, so the
-            # name never points at a mixture of old and new files.
-            trash = os.path.join(parent, f".{name}.replaced-{os.getpid()}")
-            _remove(trash)
-            os.rename(out_dir, trash)
-            os.rename(tmp, out_dir)
-            _remove(trash)
-        else:
-            os.rename(tmp, out_dir)
+        move_into_place(tmp, out_dir)
     except OSError as exc:
         _remove(tmp)
         raise OutputError(f"{out_dir}: cannot write the report ({exc.strerror or exc}); "
@@ -89,6 +80,23 @@ def write_folder(out_dir: str, files: dict[str, bytes], overwrite: bool) -> str:
         _remove(tmp)
         raise
     return out_dir
+
+
+def move_into_place(tmp: str, out_dir: str) -> None:
+    """Rename the finished folder ``tmp`` to ``out_dir``, replacing what :func:`check_report_folder` allowed.
+
+    An empty folder or a previous report is moved aside first, so the name
+    never points at a mixture of old and new files.
+    """
+    if os.path.lexists(out_dir):
+        parent, name = os.path.split(out_dir)
+        trash = os.path.join(parent, f".{name}.replaced-{os.getpid()}")
+        _remove(trash)
+        os.rename(out_dir, trash)
+        os.rename(tmp, out_dir)
+        _remove(trash)
+    else:
+        os.rename(tmp, out_dir)
 
 
 def _remove(path: str) -> None:
