@@ -197,6 +197,14 @@ def test_planner_counts_the_scores(tmp_path):
     assert any("scratch disk" in line for line in plan.lines())
     with pytest.raises(rankfold.MemoryLimitError, match="scratch disk"):
         make_plan(npy_request(50_000_000, 100_000, 4 << 30, scores=True, route="sketch", scratch_free=1 << 20), SPEED)
+    # a product small enough for memory stays there serially; on a cluster writing a store the
+    # workers fill it on scratch disk (routes/sketch.py), and the plan says so
+    small = dict(scores=True, route="sketch")
+    assert make_plan(npy_request(1_000_000, 5_000, 4 << 30, **small), SPEED).estimate.scratch_bytes == 0
+    clustered = make_plan(npy_request(1_000_000, 5_000, 4 << 30, clustered=True, **small), SPEED)
+    assert clustered.estimate.scratch_bytes == TallProduct.bytes_needed(1_000_000, 20)
+    held = make_plan(npy_request(1_000_000, 5_000, 4 << 30, clustered=True, outputs_held=True, **small), SPEED)
+    assert held.estimate.scratch_bytes == 0  # no store: every row comes to the client anyway
 
 
 def test_chunks_hold_whole_components(planted, write_npy, tmp_path):

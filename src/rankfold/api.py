@@ -195,7 +195,7 @@ def decompose(source, rank: int, *, memory_limit=None, standardize: bool = False
             limit = resolved["memory_limit"] if resolved else default_memory_limit()
         request = dict(accuracy=accuracy, oversample=oversample, power_iterations=power_iterations,
                        sketch=sketch, missing=missing, standardize=standardize, scores=bool(scores),
-                       scratch_free=_free_disk(out), outputs_held=out is None)
+                       scratch_free=_free_disk(out), outputs_held=out is None, clustered=cluster is not None)
         chosen = make_plan(plan_request(src, rank, limit, route=route, **request), speed or machine_speed())
         if resolved and chosen.route != resolved["route"]:
             # The choice rests on measured machine speeds, which drift between runs; the

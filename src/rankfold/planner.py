@@ -61,6 +61,7 @@ class PlanRequest:
     scores: bool = True
     scratch_free: int | None = None  # free bytes where scratch arrays would go (None: not checked)
     outputs_held: bool = False  # per-sample outputs returned in memory rather than written to a store
+    clustered: bool = False  # passes run on a cluster (whose workers write stored per-sample rows)
 
 
 @dataclass(frozen=True)
@@ -174,8 +175,10 @@ def _estimate(route: str, req: PlanRequest, speed: MachineSpeed) -> RouteEstimat
                 per_pass = per_pass[:passes]
         final = 10.0 * width ** 3 + 4.0 * size * width ** 2 * (req.power_iterations + 1)
         if req.scores and axis == "samples" and req.sketch != "one-pass":
-            # The last pass keeps Xc Q (n x width) for the scores: in memory, or on scratch disk.
-            if sketch.tall_fits_in_memory(n, width, req.memory_limit):
+            # The last pass keeps Xc Q (n x width) for the scores: in memory, or on scratch disk
+            # (always on disk when cluster workers fill it beside a stored result).
+            if sketch.tall_fits_in_memory(n, width, req.memory_limit) and not (req.clustered
+                                                                                and not req.outputs_held):
                 fixed += TallProduct.bytes_needed(n, width)
             else:
                 fixed += writer_bytes(n, width + 1, scratch_chunk_bytes(req.memory_limit))
