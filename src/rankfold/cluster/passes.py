@@ -92,7 +92,7 @@ def cluster_pass(name: str, inp, partition: Partition, state, prepare) -> tuple[
              "source_path": getattr(state, "source_path", None), "extras": extras}
     shipped = len(template) + len(cloudpickle.dumps(prepare)) + len(cloudpickle.dumps(spec))
     key = f"rankfold-{name.replace(' ', '-')}-{uuid.uuid4().hex[:8]}"
-    n_tasks = TASKS_PER_THREAD * session.threads
+    n_tasks = session.tasks_per_pass
     if hook is None:
         pieces = [{"bounds": partition.bounds[a:b], "blocks": b - a, "rows": None}
                   for a, b in block_ranges(len(partition), n_tasks)]
@@ -149,7 +149,7 @@ def cluster_pass(name: str, inp, partition: Partition, state, prepare) -> tuple[
         pending = [f for f in [*folds, *merges] if not f.done()]
         if pending:
             client.cancel(pending)
-        _reraise(exc, name)
+        raise_as_cluster_error(exc, name)
     # Upper bound of the traffic: every task's arguments once, and every fold or merge
     # result once to its merge or to us (states have the same size whatever their range).
     session.bytes_moved += len(folds) * shipped + (len(folds) + len(merges)) * len(payload)
@@ -161,7 +161,7 @@ def cluster_pass(name: str, inp, partition: Partition, state, prepare) -> tuple[
     return merged, record
 
 
-def _reraise(exc: Exception, name: str):
+def raise_as_cluster_error(exc: Exception, name: str):
     """Our own errors pass through (a DataError found on a worker); cluster failures get a message."""
     from rankfold.errors import RankfoldError
 

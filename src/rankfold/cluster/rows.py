@@ -26,7 +26,7 @@ import uuid
 
 import numpy as np
 
-from rankfold.cluster.passes import TASKS_PER_THREAD, _reraise, block_ranges
+from rankfold.cluster.passes import raise_as_cluster_error, block_ranges
 from rankfold.sources.base import Partition
 
 SETTLE_TIMEOUT = 120.0  # seconds to wait for stopped tasks before giving up on them
@@ -85,7 +85,7 @@ def scores_from_tall(session, tall, coefficients: np.ndarray, writer) -> bool:
     key = f"rankfold-scores-from-tall-{uuid.uuid4().hex[:8]}"
     n = writer.stop
     ranges = [(a * plan.chunk, min(n, b * plan.chunk))
-              for a, b in block_ranges(math.ceil(n / plan.chunk), TASKS_PER_THREAD * session.threads)]
+              for a, b in block_ranges(math.ceil(n / plan.chunk), session.tasks_per_pass)]
     futures = [client.submit(tall_scores, source, coefficients, plan, lo, hi, session.blas_limits, stop_name(key),
                              key=f"{key}-{i}", pure=False) for i, (lo, hi) in enumerate(ranges)]
     session.tasks += len(futures)
@@ -98,6 +98,6 @@ def scores_from_tall(session, tall, coefficients: np.ndarray, writer) -> bool:
                 session.bytes_moved += residual.nbytes
     except Exception as exc:
         settle(client, futures, key)
-        _reraise(exc, "scores")
+        raise_as_cluster_error(exc, "scores")
     session.bytes_moved += len(futures) * (coefficients.nbytes + 1024)  # arguments: coefficients and recipes
     return True

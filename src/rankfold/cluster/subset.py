@@ -26,7 +26,7 @@ import uuid
 import cloudpickle
 import numpy as np
 
-from rankfold.cluster.passes import TASKS_PER_THREAD, _reraise, block_ranges
+from rankfold.cluster.passes import raise_as_cluster_error, block_ranges
 from rankfold.cluster.worker import blas_limit
 from rankfold.sources.spec import reopen
 
@@ -44,7 +44,7 @@ def group_count(session, n_items: int, subset_bytes: int, memory_limit: int) -> 
     is held on disk) is cut further.
     """
     by_size = math.ceil(subset_bytes / max(1, memory_limit // 8))
-    return max(1, min(n_items, max(TASKS_PER_THREAD * session.threads, by_size)))
+    return max(1, min(n_items, max(session.tasks_per_pass, by_size)))
 
 
 def fill_from_samples(session, source, draw, data: np.ndarray, spans: list, piece_rows: int,
@@ -135,7 +135,7 @@ def _run(session, fn, tasks: list, place) -> int:
         pending = [f for f in futures if not f.done()]
         if pending:
             client.cancel(pending)
-        _reraise(exc, PASS_NAME)
+        raise_as_cluster_error(exc, PASS_NAME)
     return total
 
 
