@@ -26,7 +26,7 @@ import uuid
 
 import numpy as np
 
-from rankfold.cluster.passes import raise_as_cluster_error, block_ranges
+from rankfold.cluster.passes import block_ranges, raise_as_cluster_error
 from rankfold.sources.base import Partition
 
 SETTLE_TIMEOUT = 120.0  # seconds to wait for stopped tasks before giving up on them

@@ -26,7 +26,7 @@ import uuid
 import cloudpickle
 import numpy as np
 
-from rankfold.cluster.passes import raise_as_cluster_error, block_ranges
+from rankfold.cluster.passes import block_ranges, raise_as_cluster_error
 from rankfold.cluster.worker import blas_limit
 from rankfold.sources.spec import reopen
 
