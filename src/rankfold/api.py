@@ -16,7 +16,8 @@ from rankfold.errors import Interrupted, SourceError, UsageError
 from rankfold.memory import default_memory_limit, parse_memory, return_freed_memory_promptly
 from rankfold.result import Result, ResultWriter, check_output_path, open_result
 from rankfold.routes import scores as scores_stage
-from rankfold.sample_outputs import DEFAULT_FLAG_THRESHOLD, SCORE_DTYPES, FlagRule, chunk_rows, flag_rule
+from rankfold.sample_outputs import (DEFAULT_FLAG_THRESHOLD, SCORE_DTYPES, FlagRule, chunk_rows, flag_rule,
+                                     score_sink)
 from rankfold.machine import MachineSpeed, machine_speed
 from rankfold.planner import Plan, PlanRequest, make_plan
 from rankfold.routes import ROUTES
@@ -294,20 +295,15 @@ def _sample_outputs(dec: Decomposition, inp: RouteInput, writer: ResultWriter | 
                     flag_threshold: float) -> tuple[dict, FlagRule]:
     """Scores, residuals and flags, into the store under construction or into memory."""
     n, k = dec.n_samples, dec.loadings.shape[1]
-    chunk = chunk_rows(n, k)
     if writer is None:
-        arrays = {"scores": np.empty((n, k)), "residual": np.empty(n), "residual_fraction": np.empty(n)}
-        every = scores_stage.write(dec, inp, arrays, np.float64)
+        sink = score_sink(n, k)
+        every = scores_stage.write(dec, inp, sink)
         rule = flag_rule(every, flag_threshold)
-        arrays["flagged"] = every > rule.cutoff
-        return arrays, rule
+        return {**sink.arrays, "flagged": every > rule.cutoff}, rule
     with writer:  # a failed write (a full disk) becomes an OutputError and removes the partial store
-        arrays = {"scores": writer.create("scores", (n, k), scores_dtype, ("sample", "component"), (chunk, k)),
-                  "residual": writer.create("residual", (n,), "float64", ("sample",), (chunk,)),
-                  "residual_fraction": writer.create("residual_fraction", (n,), "float64", ("sample",), (chunk,))}
-        every = scores_stage.write(dec, inp, arrays, np.dtype(scores_dtype), group=writer.tmp)
+        every = scores_stage.write(dec, inp, score_sink(n, k, writer, scores_dtype))
         rule = flag_rule(every, flag_threshold)
-        writer.add("flagged", every > rule.cutoff, ("sample",), (chunk,))
+        writer.add("flagged", every > rule.cutoff, ("sample",), (chunk_rows(n, k),))
     return {}, rule
 
 

@@ -29,7 +29,7 @@ from rankfold.memory import default_memory_limit, parse_memory, return_freed_mem
 from rankfold.result import Result, ResultWriter, _remove, check_parent_folder, open_result
 from rankfold.routes import scores as scores_stage
 from rankfold.routes.common import RouteInput, check_values
-from rankfold.sample_outputs import DEFAULT_FLAG_THRESHOLD, SCORE_DTYPES, ScoreWriter, chunk_rows, flag_rule
+from rankfold.sample_outputs import DEFAULT_FLAG_THRESHOLD, SCORE_DTYPES, chunk_rows, flag_rule, score_sink
 from rankfold.sources import Source, open_source
 
 FORMATS = ("zarr", "parquet")
@@ -141,16 +141,8 @@ def project(result, source, *, out=None, format: str = "zarr", memory_limit=None
                                                              f".{os.path.basename(out)}.staging-{os.getpid()}")
         writer = ResultWriter(staging, overwrite, marker, checked=False) if out else None
         try:
-            if writer is None:
-                arrays = {"scores": np.empty((n, k)), "residual": np.empty(n), "residual_fraction": np.empty(n)}
-            else:
-                arrays = {"scores": writer.create("scores", (n, k), scores_dtype, ("sample", "component"), (chunk, k)),
-                          "residual": writer.create("residual", (n,), "float64", ("sample",), (chunk,)),
-                          "residual_fraction": writer.create("residual_fraction", (n,), "float64", ("sample",),
-                                                             (chunk,))}
             cluster_info = None
-            sink = ScoreWriter(arrays, chunk, np.dtype(scores_dtype) if writer else np.float64,
-                               writer.tmp if writer else None)
+            sink = score_sink(n, k, writer, scores_dtype)
             try:
                 with optional_session(cluster, src) as session:
                     scores_stage.project(dataclasses.replace(inp, cluster=session), loadings, center, scale, sink,
@@ -171,8 +163,8 @@ def project(result, source, *, out=None, format: str = "zarr", memory_limit=None
             if cluster_info is not None:
                 attrs["cluster"] = cluster_info
             if writer is None:
-                return Projection(None, arrays["scores"], arrays["residual"], arrays["residual_fraction"], flagged,
-                                  ids, attrs)
+                return Projection(None, sink.arrays["scores"], sink.arrays["residual"],
+                                  sink.arrays["residual_fraction"], flagged, ids, attrs)
             with writer:
                 writer.add("flagged", flagged, ("sample",), (chunk,))
                 if ids is not None and len(ids) == n:

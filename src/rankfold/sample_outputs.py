@@ -223,6 +223,7 @@ class ScoreWriter:
         self.start = start
         self.stop = arrays["residual"].shape[0] if stop is None else stop
         self.chunk, self.dtype, self.group = chunk, np.dtype(dtype), group
+        self.arrays = arrays
         self.rows = RowWriter(arrays, chunk, start)
         self.residual = np.empty(self.stop - start)
 
@@ -256,6 +257,23 @@ def _absolute(path: str) -> str:
     from rankfold.sources.location import is_url
 
     return path if is_url(path) else os.path.abspath(path)
+
+
+def score_sink(n: int, k: int, writer=None, dtype="float32") -> ScoreWriter:
+    """A :class:`ScoreWriter` over new per-sample arrays: in memory (float64), or in ``writer``'s store.
+
+    ``writer`` is a :class:`rankfold.result.ResultWriter` (scores stored as
+    ``dtype``, arrays chunked by :func:`chunk_rows`; its partial store is the
+    group cluster workers open), or None for numpy arrays returned in memory.
+    """
+    chunk = chunk_rows(n, k)
+    if writer is None:
+        arrays = {"scores": np.empty((n, k)), "residual": np.empty(n), "residual_fraction": np.empty(n)}
+        return ScoreWriter(arrays, chunk, np.float64)
+    arrays = {"scores": writer.create("scores", (n, k), dtype, ("sample", "component"), (chunk, k)),
+              "residual": writer.create("residual", (n,), "float64", ("sample",), (chunk,)),
+              "residual_fraction": writer.create("residual_fraction", (n,), "float64", ("sample",), (chunk,))}
+    return ScoreWriter(arrays, chunk, dtype, writer.tmp)
 
 
 class _TallRows:

@@ -44,9 +44,9 @@ class ReportFolder:
             if os.path.lexists(self.out) and not self.overwrite:
                 raise OutputError(f"{self.out}: appeared while the comparison ran; the report was not written")
             move_into_place(self.tmp, self.out)
-        except OSError as exc:
+        except OSError as err:
             shutil.rmtree(self.tmp, ignore_errors=True)
-            raise OutputError(f"{self.out}: cannot write the report ({exc.strerror or exc})") from None
+            raise OutputError(f"{self.out}: cannot write the report ({err.strerror or err})") from None
         except OutputError:
             shutil.rmtree(self.tmp, ignore_errors=True)
             raise

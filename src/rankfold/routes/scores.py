@@ -25,17 +25,15 @@ def needs_pass(route: str, native_axis: str, sketch: str) -> bool:
     return route == "sketch" and sketch == "one-pass" and native_axis == "samples"
 
 
-def write(dec: Decomposition, inp: RouteInput, arrays: dict, dtype, group: str | None = None) -> np.ndarray:
-    """Write ``scores``, ``residual`` and ``residual_fraction`` into ``arrays``; return every residual.
+def write(dec: Decomposition, inp: RouteInput, sink: ScoreWriter) -> np.ndarray:
+    """Write every sample's scores, residual and residual fraction through ``sink``; return every residual.
 
-    ``arrays`` maps those names to Zarr (or numpy) arrays of length n, chunked
-    along samples by :func:`rankfold.sample_outputs.chunk_rows`.  ``group``
-    is the path or URL of the Zarr group holding them: on a cluster, the
-    workers then write the rows they compute (:mod:`rankfold.cluster.rows`).
+    ``sink`` (:func:`rankfold.sample_outputs.score_sink`) holds the arrays of
+    length n, chunked along samples.  When they are in a store cluster workers
+    can open, the workers write the rows they compute (:mod:`rankfold.cluster.rows`).
     The residuals (n,) are returned for the outlier rule, which needs all of them.
     """
     n, k = dec.n_samples, dec.loadings.shape[1]
-    sink = ScoreWriter(arrays, chunk_rows(n, k), dtype, group)
     parts = dec.parts
     try:
         if parts.scores is not None:
